@@ -1,0 +1,503 @@
+//! Reads and verifies a bundle. Every size field is checked against the real file length and
+//! against fixed limits before anything it controls is allocated or touched.
+
+use std::borrow::Cow;
+use std::collections::HashMap;
+use std::fs::File;
+use std::path::Path;
+
+use sha2::{Digest, Sha256};
+
+use super::error::{BundleError, TensorProblem};
+use super::manifest::{Manifest, OutputKind};
+use super::version::validate_version;
+use super::{
+    ALIGN, FORMAT_VERSION, HEADER_LEN, MAGIC, MAX_CHECK_SAMPLES, MAX_MANIFEST_LEN,
+    MAX_TENSOR_ELEMENTS, align_up, hex,
+};
+use crate::graph::Op;
+use crate::graph::shapes::{self, Shapes};
+use crate::graph::summary::Summary;
+
+/// The bytes of a bundle: a read-only memory map of the file, or an owned buffer.
+enum Storage {
+    Mapped(memmap2::Mmap),
+    Owned(Vec<u8>),
+}
+
+impl std::ops::Deref for Storage {
+    type Target = [u8];
+    fn deref(&self) -> &[u8] {
+        match self {
+            Storage::Mapped(m) => m,
+            Storage::Owned(v) => v,
+        }
+    }
+}
+
+/// A verified bundle: its manifest, its tensors (borrowed from the file where possible) and
+/// the checked shape of every graph value.
+pub struct Bundle {
+    manifest: Manifest,
+    bytes: Storage,
+    data_start: usize,
+    index: HashMap<String, usize>,
+    shapes: Shapes,
+    file_sha256: String,
+}
+
+impl std::fmt::Debug for Bundle {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("Bundle")
+            .field("name", &self.manifest.name)
+            .field("version", &self.manifest.version)
+            .field("bytes", &self.bytes.len())
+            .finish()
+    }
+}
+
+impl Bundle {
+    /// Opens and verifies the bundle at `path`, memory-mapping it.
+    ///
+    /// # Errors
+    /// I/O failures and every check of [`Bundle::from_bytes`].
+    pub fn open(path: &Path) -> Result<Bundle, BundleError> {
+        let io = |source| BundleError::Io {
+            path: path.to_path_buf(),
+            source,
+        };
+        let file = File::open(path).map_err(io)?;
+        let len = file.metadata().map_err(io)?.len();
+        if len == 0 {
+            return Err(BundleError::Truncated {
+                what: "header",
+                needed: HEADER_LEN as u64,
+                available: 0,
+            });
+        }
+        // SAFETY: the map is read-only and private to this process. Bundles are published by
+        // writing a new file and renaming it into place (never by rewriting in place), so the
+        // file under the map does not change while we hold it; everything read from it is
+        // verified (checksums, bounds) before use.
+        let map = unsafe { memmap2::Mmap::map(&file) }.map_err(io)?;
+        Self::parse(Storage::Mapped(map))
+    }
+
+    /// Verifies a bundle held in memory.
+    ///
+    /// # Errors
+    /// Truncation, bad magic, unknown format version, checksum mismatches, tensor entries out
+    /// of bounds or disagreeing with their shapes, unknown ops, graphs that do not check, and
+    /// input/output specs that disagree with the graph: each as its own [`BundleError`].
+    pub fn from_bytes(bytes: Vec<u8>) -> Result<Bundle, BundleError> {
+        Self::parse(Storage::Owned(bytes))
+    }
+
+    fn parse(bytes: Storage) -> Result<Bundle, BundleError> {
+        let total = bytes.len() as u64;
+        if bytes.len() < HEADER_LEN {
+            return Err(BundleError::Truncated {
+                what: "header",
+                needed: HEADER_LEN as u64,
+                available: total,
+            });
+        }
+        let mut magic = [0u8; 8];
+        magic.copy_from_slice(&bytes[0..8]);
+        if magic != MAGIC {
+            return Err(BundleError::BadMagic { found: magic });
+        }
+        let u32_at =
+            |o: usize| u32::from_le_bytes([bytes[o], bytes[o + 1], bytes[o + 2], bytes[o + 3]]);
+        let u64_at = |o: usize| {
+            let mut b = [0u8; 8];
+            b.copy_from_slice(&bytes[o..o + 8]);
+            u64::from_le_bytes(b)
+        };
+        let format = u32_at(8);
+        if format != FORMAT_VERSION {
+            return Err(BundleError::UnsupportedFormat {
+                found: format,
+                supported: FORMAT_VERSION,
+            });
+        }
+        let flags = u32_at(12);
+        if flags != 0 {
+            return Err(BundleError::UnknownFlags { flags });
+        }
+        let manifest_len = u64_at(16);
+        let data_len = u64_at(24);
+        if manifest_len > MAX_MANIFEST_LEN {
+            return Err(BundleError::ManifestTooLarge {
+                length: manifest_len,
+                limit: MAX_MANIFEST_LEN,
+            });
+        }
+        let manifest_end = HEADER_LEN as u64 + manifest_len;
+        if total < manifest_end {
+            return Err(BundleError::Truncated {
+                what: "manifest",
+                needed: manifest_end,
+                available: total,
+            });
+        }
+        let data_start = align_up(manifest_end);
+        let expected = data_start
+            .checked_add(data_len)
+            .ok_or(BundleError::SizeMismatch {
+                expected: u64::MAX,
+                actual: total,
+            })?;
+        if total < expected {
+            return Err(BundleError::Truncated {
+                what: "data section",
+                needed: expected,
+                available: total,
+            });
+        }
+        if total > expected {
+            return Err(BundleError::SizeMismatch {
+                expected,
+                actual: total,
+            });
+        }
+        // From here on every offset below `total` fits in usize, because `bytes` holds them.
+        let manifest_bytes = &bytes[HEADER_LEN..manifest_end as usize];
+        let actual = hex(&Sha256::digest(manifest_bytes));
+        let stored = hex(&bytes[32..64]);
+        if actual != stored {
+            return Err(BundleError::ManifestChecksum {
+                expected: stored,
+                actual,
+            });
+        }
+        let manifest = parse_manifest(manifest_bytes)?;
+        check_name(&manifest.name)?;
+        validate_version(&manifest.version)?;
+
+        let data = &bytes[data_start as usize..];
+        let index = check_tensor_index(&manifest, data_len)?;
+        let actual = hex(&Sha256::digest(data));
+        if actual != manifest.data_sha256.to_ascii_lowercase() {
+            return Err(BundleError::DataChecksum {
+                expected: manifest.data_sha256.clone(),
+                actual,
+            });
+        }
+        let file_sha256 = hex(&Sha256::digest(&bytes[..]));
+
+        let mut bundle = Bundle {
+            manifest,
+            bytes,
+            data_start: data_start as usize,
+            index,
+            shapes: Shapes {
+                values: HashMap::new(),
+                node_outputs: Vec::new(),
+            },
+            file_sha256,
+        };
+        bundle.check_values_finite()?;
+        let shapes = {
+            let lookup = |name: &str| bundle.tensor_shape(name);
+            shapes::infer(&bundle.manifest.graph, &lookup)?
+        };
+        bundle.shapes = shapes;
+        bundle.check_specs()?;
+        Ok(bundle)
+    }
+
+    pub fn manifest(&self) -> &Manifest {
+        &self.manifest
+    }
+
+    /// SHA-256 of the whole file, lower-case hex: the identity of this exact bundle.
+    pub fn file_sha256(&self) -> &str {
+        &self.file_sha256
+    }
+
+    /// Size of the bundle file in bytes.
+    pub fn file_len(&self) -> usize {
+        self.bytes.len()
+    }
+
+    /// The checked per-sample shape of every graph value.
+    pub fn shapes(&self) -> &Shapes {
+        &self.shapes
+    }
+
+    /// Per-sample output shape of the graph.
+    pub fn output_shape(&self) -> &[usize] {
+        // `check_specs`' caller, `infer`, proved the output value exists.
+        self.shapes
+            .values
+            .get(&self.manifest.graph.output)
+            .map(Vec::as_slice)
+            .unwrap_or(&[])
+    }
+
+    /// The shape of tensor `name`, if the bundle has it.
+    pub fn tensor_shape(&self, name: &str) -> Option<Vec<usize>> {
+        self.index
+            .get(name)
+            .map(|&i| self.manifest.tensors[i].shape.clone())
+    }
+
+    /// The values of tensor `name`, borrowed from the file when it is suitably aligned (it is
+    /// for memory-mapped files on little-endian machines) and decoded otherwise.
+    pub fn tensor(&self, name: &str) -> Option<Cow<'_, [f32]>> {
+        let entry = &self.manifest.tensors[*self.index.get(name)?];
+        let start = self.data_start + entry.offset as usize;
+        let raw = &self.bytes[start..start + entry.length as usize];
+        if cfg!(target_endian = "little")
+            && let Ok(floats) = bytemuck::try_cast_slice::<u8, f32>(raw)
+        {
+            return Some(Cow::Borrowed(floats));
+        }
+        Some(Cow::Owned(
+            raw.chunks_exact(4)
+                .map(|b| f32::from_le_bytes([b[0], b[1], b[2], b[3]]))
+                .collect(),
+        ))
+    }
+
+    /// Parameter and multiply-add counts, layer by layer.
+    pub fn summary(&self) -> Summary {
+        let lookup = |name: &str| self.tensor_shape(name);
+        Summary::new(&self.manifest.graph, &self.shapes, &lookup)
+    }
+
+    /// Weights with NaN or infinity would make every answer silently wrong; refuse them.
+    fn check_values_finite(&self) -> Result<(), BundleError> {
+        for entry in &self.manifest.tensors {
+            // Every indexed entry resolves: `check_tensor_index` built the index from them.
+            let values = self.tensor(&entry.name).expect("indexed tensor");
+            if let Some(index) = values.iter().position(|v| !v.is_finite()) {
+                return Err(BundleError::Tensor {
+                    tensor: entry.name.clone(),
+                    problem: TensorProblem::NonFinite { index },
+                });
+            }
+        }
+        Ok(())
+    }
+
+    fn check_specs(&self) -> Result<(), BundleError> {
+        let m = &self.manifest;
+        let spec = |field: &'static str, problem: String| BundleError::Spec { field, problem };
+        if m.input.shape != m.graph.input.shape {
+            return Err(spec(
+                "input.shape",
+                format!(
+                    "{:?} differs from the graph input's {:?}",
+                    m.input.shape, m.graph.input.shape
+                ),
+            ));
+        }
+        if let Some(img) = &m.input.image {
+            let [c, h, w] = m.input.shape[..] else {
+                return Err(spec(
+                    "input.image",
+                    format!(
+                        "image input needs a [C, H, W] shape, not {:?}",
+                        m.input.shape
+                    ),
+                ));
+            };
+            if img.color.channels() != c {
+                return Err(spec(
+                    "input.image.color",
+                    format!(
+                        "{:?} gives {} channels, the model takes {c}",
+                        img.color,
+                        img.color.channels()
+                    ),
+                ));
+            }
+            if img.width != w || img.height != h {
+                return Err(spec(
+                    "input.image",
+                    format!(
+                        "target {}x{} differs from the model's {w}x{h}",
+                        img.width, img.height
+                    ),
+                ));
+            }
+            if img.mean.len() != c || img.std.len() != c {
+                return Err(spec(
+                    "input.image.mean/std",
+                    format!(
+                        "need {c} values each, got {} and {}",
+                        img.mean.len(),
+                        img.std.len()
+                    ),
+                ));
+            }
+            if !img.scale.is_finite()
+                || img.mean.iter().any(|v| !v.is_finite())
+                || img.std.iter().any(|v| !(v.is_finite() && *v > 0.0))
+            {
+                return Err(spec(
+                    "input.image",
+                    "scale and mean must be finite, std finite and positive".into(),
+                ));
+            }
+        }
+        let out_elems: usize = self.output_shape().iter().product();
+        if !m.output.labels.is_empty() && m.output.labels.len() != out_elems {
+            return Err(spec(
+                "output.labels",
+                format!(
+                    "{} labels for an output of {} elements ({:?})",
+                    m.output.labels.len(),
+                    out_elems,
+                    self.output_shape()
+                ),
+            ));
+        }
+        if m.output.kind == OutputKind::Probabilities && out_elems == 0 {
+            return Err(spec("output.kind", "empty output".into()));
+        }
+        if let Some(cs) = &m.check_samples {
+            let bad = |problem: String| BundleError::CheckSamples { problem };
+            if cs.count == 0 || cs.count > MAX_CHECK_SAMPLES {
+                return Err(bad(format!(
+                    "count {} is not in 1..={MAX_CHECK_SAMPLES}",
+                    cs.count
+                )));
+            }
+            for (role, tensor, per_sample) in [
+                ("input", &cs.input, &m.input.shape[..]),
+                ("output", &cs.output, self.output_shape()),
+            ] {
+                let mut expected = vec![cs.count];
+                expected.extend_from_slice(per_sample);
+                match self.tensor_shape(tensor) {
+                    None => return Err(bad(format!("{role} tensor {tensor:?} is missing"))),
+                    Some(s) if s != expected => {
+                        return Err(bad(format!(
+                            "{role} tensor {tensor:?} has shape {s:?}, expected {expected:?}"
+                        )));
+                    }
+                    Some(_) => {}
+                }
+            }
+        }
+        Ok(())
+    }
+}
+
+/// Parses the manifest, naming an unknown op precisely rather than as a generic JSON error.
+fn parse_manifest(bytes: &[u8]) -> Result<Manifest, BundleError> {
+    let value: serde_json::Value =
+        serde_json::from_slice(bytes).map_err(|source| BundleError::ManifestJson { source })?;
+    if let Some(nodes) = value.pointer("/graph/nodes").and_then(|n| n.as_array()) {
+        for node in nodes {
+            let op = node.get("op").and_then(|o| o.as_str()).unwrap_or("");
+            if !Op::KINDS.contains(&op) {
+                return Err(BundleError::UnknownOp {
+                    node: node
+                        .get("name")
+                        .and_then(|n| n.as_str())
+                        .unwrap_or("<unnamed>")
+                        .to_string(),
+                    op: op.to_string(),
+                });
+            }
+        }
+    }
+    serde_json::from_value(value).map_err(|source| BundleError::ManifestJson { source })
+}
+
+/// Model names: 1 to 128 characters of ASCII letters, digits, `-`, `_` and `.`, not starting
+/// with `.` (so a name is always safe as a file name and a metric label).
+pub fn check_name(name: &str) -> Result<(), BundleError> {
+    let bad = |reason| BundleError::BadName {
+        name: name.to_string(),
+        reason,
+    };
+    if name.is_empty() || name.len() > 128 {
+        return Err(bad("must be 1 to 128 characters"));
+    }
+    if name.starts_with('.') {
+        return Err(bad("must not start with '.'"));
+    }
+    if !name
+        .chars()
+        .all(|c| c.is_ascii_alphanumeric() || matches!(c, '-' | '_' | '.'))
+    {
+        return Err(bad("allowed are ASCII letters, digits, '-', '_' and '.'"));
+    }
+    Ok(())
+}
+
+fn check_tensor_index(
+    manifest: &Manifest,
+    data_len: u64,
+) -> Result<HashMap<String, usize>, BundleError> {
+    let mut index = HashMap::with_capacity(manifest.tensors.len());
+    let err = |tensor: &str, problem| BundleError::Tensor {
+        tensor: tensor.to_string(),
+        problem,
+    };
+    for (i, t) in manifest.tensors.iter().enumerate() {
+        if index.insert(t.name.clone(), i).is_some() {
+            return Err(err(&t.name, TensorProblem::Duplicate));
+        }
+        let elements: u128 = t.shape.iter().map(|&d| d as u128).product();
+        if elements > MAX_TENSOR_ELEMENTS as u128 {
+            return Err(err(
+                &t.name,
+                TensorProblem::TooLarge {
+                    shape: t.shape.clone(),
+                    elements,
+                    limit: MAX_TENSOR_ELEMENTS,
+                },
+            ));
+        }
+        if t.offset % ALIGN != 0 {
+            return Err(err(
+                &t.name,
+                TensorProblem::Misaligned {
+                    offset: t.offset,
+                    align: ALIGN,
+                },
+            ));
+        }
+        let end = t.offset.checked_add(t.length);
+        if end.is_none_or(|e| e > data_len) {
+            return Err(err(
+                &t.name,
+                TensorProblem::OutOfBounds {
+                    offset: t.offset,
+                    length: t.length,
+                    data_len,
+                },
+            ));
+        }
+        let expected = elements as u64 * t.dtype.size();
+        if t.length != expected {
+            return Err(err(
+                &t.name,
+                TensorProblem::LengthMismatch {
+                    length: t.length,
+                    expected,
+                },
+            ));
+        }
+    }
+    let mut spans: Vec<&super::manifest::TensorEntry> =
+        manifest.tensors.iter().filter(|t| t.length > 0).collect();
+    spans.sort_by_key(|t| t.offset);
+    for pair in spans.windows(2) {
+        if pair[0].offset + pair[0].length > pair[1].offset {
+            return Err(err(
+                &pair[1].name,
+                TensorProblem::Overlap {
+                    other: pair[0].name.clone(),
+                },
+            ));
+        }
+    }
+    Ok(index)
+}

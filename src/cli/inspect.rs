@@ -1,0 +1,246 @@
+//! `convoy inspect`: what a bundle holds, and proof that it is intact.
+
+use std::io::Write;
+use std::path::Path;
+
+use serde::Serialize;
+
+use super::CliError;
+use crate::bundle::manifest::{InputSpec, OutputKind};
+use crate::bundle::{Bundle, FORMAT_VERSION};
+use crate::engine::{CheckReport, Engine, EngineConfig};
+use crate::graph::summary::LayerRow;
+
+#[derive(Serialize)]
+struct Report<'a> {
+    name: &'a str,
+    version: &'a str,
+    description: &'a str,
+    created: &'a str,
+    format_version: u32,
+    file_bytes: usize,
+    file_sha256: &'a str,
+    data_sha256: &'a str,
+    /// Always true in a printed report: a bundle whose checksums fail is not printed.
+    checksums_verified: bool,
+    input: &'a InputSpec,
+    output: OutputReport<'a>,
+    layers: &'a [LayerRow],
+    parameters: u64,
+    multiply_adds: u64,
+    check_samples: Option<CheckJson>,
+    instruction_set: &'static str,
+    plan_steps: usize,
+    folded: &'a [String],
+    provenance: &'a crate::bundle::manifest::Provenance,
+}
+
+#[derive(Serialize)]
+struct OutputReport<'a> {
+    shape: &'a [usize],
+    kind: OutputKind,
+    labels: &'a [String],
+}
+
+#[derive(Serialize)]
+struct CheckJson {
+    samples: usize,
+    max_abs_error: f32,
+    bound: f32,
+    passed: bool,
+    produced_by: String,
+}
+
+impl From<&CheckReport> for CheckJson {
+    fn from(r: &CheckReport) -> Self {
+        CheckJson {
+            samples: r.samples,
+            max_abs_error: r.max_abs_error,
+            bound: r.bound,
+            passed: r.passed,
+            produced_by: r.produced_by.clone(),
+        }
+    }
+}
+
+pub fn inspect(path: &Path, json: bool) -> Result<(), CliError> {
+    let bundle = Bundle::open(path)?;
+    let engine = Engine::new(&bundle, &EngineConfig::default())?;
+    let check = engine.replay_check_samples(&bundle);
+    let summary = bundle.summary();
+    let m = bundle.manifest();
+    let report = Report {
+        name: &m.name,
+        version: &m.version,
+        description: &m.description,
+        created: &m.created,
+        format_version: FORMAT_VERSION,
+        file_bytes: bundle.file_len(),
+        file_sha256: bundle.file_sha256(),
+        data_sha256: &m.data_sha256,
+        checksums_verified: true,
+        input: &m.input,
+        output: OutputReport {
+            shape: bundle.output_shape(),
+            kind: m.output.kind,
+            labels: &m.output.labels,
+        },
+        layers: &summary.layers,
+        parameters: summary.parameters,
+        multiply_adds: summary.multiply_adds,
+        check_samples: check.as_ref().map(CheckJson::from),
+        instruction_set: engine.plan().isa().name(),
+        plan_steps: engine.plan().step_count(),
+        folded: engine.plan().folded(),
+        provenance: &m.provenance,
+    };
+    let text = if json {
+        // Plain data: serialising it cannot fail.
+        serde_json::to_string_pretty(&report).expect("report serialises") + "\n"
+    } else {
+        render_text(&report)
+    };
+    std::io::stdout()
+        .write_all(text.as_bytes())
+        .map_err(CliError::Stdout)?;
+    match check {
+        Some(r) if !r.passed => Err(CliError::CheckFailed {
+            max_abs_error: r.max_abs_error,
+            bound: r.bound,
+        }),
+        _ => Ok(()),
+    }
+}
+
+fn with_commas(n: u64) -> String {
+    let s = n.to_string();
+    let mut out = String::new();
+    for (i, c) in s.chars().enumerate() {
+        if i > 0 && (s.len() - i).is_multiple_of(3) {
+            out.push(',');
+        }
+        out.push(c);
+    }
+    out
+}
+
+fn render_text(r: &Report<'_>) -> String {
+    use std::fmt::Write as _;
+    let mut s = String::new();
+    // Writing to a String cannot fail; the `let _` below discard an always-Ok result.
+    let _ = writeln!(s, "model      {} version {}", r.name, r.version);
+    if !r.description.is_empty() {
+        let _ = writeln!(s, "about      {}", r.description);
+    }
+    let _ = writeln!(s, "created    {}  by {}", r.created, r.provenance.writer);
+    if !r.provenance.source.is_empty() {
+        let _ = writeln!(s, "made from  {}", r.provenance.source);
+    }
+    let _ = writeln!(
+        s,
+        "file       {} bytes, format {}, sha256 {}",
+        with_commas(r.file_bytes as u64),
+        r.format_version,
+        r.file_sha256
+    );
+    let _ = writeln!(s, "checksums  verified (header, manifest, data)");
+    let _ = writeln!(s, "input      {:?}", r.input.shape);
+    if let Some(img) = &r.input.image {
+        let _ = writeln!(
+            s,
+            "  image    {:?} {}x{}, resize {:?}, fit {:?}, scale {}, mean {:?}, std {:?}",
+            img.color,
+            img.width,
+            img.height,
+            img.resize_filter,
+            img.fit,
+            img.scale,
+            img.mean,
+            img.std
+        );
+    }
+    let _ = writeln!(s, "output     {:?} {:?}", r.output.shape, r.output.kind);
+    if !r.output.labels.is_empty() {
+        let shown: Vec<&str> = r
+            .output
+            .labels
+            .iter()
+            .take(10)
+            .map(String::as_str)
+            .collect();
+        let more = r.output.labels.len().saturating_sub(10);
+        let _ = writeln!(
+            s,
+            "  labels   {}{}",
+            shown.join(", "),
+            if more > 0 {
+                format!(", … ({more} more)")
+            } else {
+                String::new()
+            }
+        );
+    }
+    let _ = writeln!(s);
+    let name_w = r
+        .layers
+        .iter()
+        .map(|l| l.name.len())
+        .max()
+        .unwrap_or(4)
+        .clamp(4, 40);
+    let _ = writeln!(
+        s,
+        "{:<name_w$}  {:<15}  {:<16}  {:>12}  {:>14}",
+        "layer", "op", "output", "parameters", "multiply-adds"
+    );
+    for l in r.layers {
+        let shape = format!("{:?}", l.output_shape);
+        let _ = writeln!(
+            s,
+            "{:<name_w$}  {:<15}  {:<16}  {:>12}  {:>14}",
+            l.name,
+            l.op,
+            shape,
+            with_commas(l.parameters),
+            with_commas(l.multiply_adds)
+        );
+    }
+    let _ = writeln!(
+        s,
+        "{:<name_w$}  {:<15}  {:<16}  {:>12}  {:>14}",
+        "total",
+        "",
+        "",
+        with_commas(r.parameters),
+        with_commas(r.multiply_adds)
+    );
+    let _ = writeln!(s);
+    let _ = writeln!(
+        s,
+        "plan       {} steps on {}; {} folded or fused",
+        r.plan_steps,
+        r.instruction_set,
+        r.folded.len()
+    );
+    match &r.check_samples {
+        Some(c) => {
+            let _ = writeln!(
+                s,
+                "check      {} samples replayed: max error {:.2e} (bound {:.2e}) — {}{}",
+                c.samples,
+                c.max_abs_error,
+                c.bound,
+                if c.passed { "passed" } else { "FAILED" },
+                if c.produced_by.is_empty() {
+                    String::new()
+                } else {
+                    format!("; expected outputs from {}", c.produced_by)
+                }
+            );
+        }
+        None => {
+            let _ = writeln!(s, "check      none stored in this bundle");
+        }
+    }
+    s
+}

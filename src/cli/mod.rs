@@ -1,0 +1,105 @@
+//! The `convoy` command line: argument definitions and one function per command.
+//!
+//! Commands print for people by default and for programs with `--json`; failures come back as
+//! [`CliError`] so `main` can print one clear line and exit non-zero.
+
+mod inspect;
+mod run;
+
+use std::path::PathBuf;
+
+use clap::{Parser, Subcommand};
+use thiserror::Error;
+
+use crate::bundle::BundleError;
+use crate::engine::{EngineError, RunError};
+use crate::npy::NpyError;
+
+/// Serve small convolutional image classifiers from plain CPU servers.
+#[derive(Debug, Parser)]
+#[command(name = "convoy", version, about)]
+pub struct Cli {
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+#[derive(Debug, Subcommand)]
+pub enum Command {
+    /// Show a bundle's model, specs, layers and totals; verify its checksums and replay its
+    /// check samples.
+    Inspect {
+        /// The bundle (.cvb) to read.
+        bundle: PathBuf,
+        /// Print JSON instead of text.
+        #[arg(long)]
+        json: bool,
+    },
+    /// Run a batch from a NumPy file through a bundle and write the raw graph output.
+    Run {
+        /// The bundle (.cvb) to run.
+        bundle: PathBuf,
+        /// Input batch as .npy; its first axis is the batch.
+        #[arg(long, short = 'i')]
+        input: PathBuf,
+        /// Where to write the output batch (.npy).
+        #[arg(long, short = 'o')]
+        output: PathBuf,
+        /// Threads for the batch.
+        #[arg(long, default_value_t = 1)]
+        threads: usize,
+        /// Refuse inputs containing NaN or infinity.
+        #[arg(long)]
+        reject_non_finite: bool,
+    },
+}
+
+/// A command's failure, with what the user needs to fix it.
+#[derive(Debug, Error)]
+pub enum CliError {
+    #[error(transparent)]
+    Bundle(#[from] BundleError),
+    #[error(transparent)]
+    Engine(#[from] EngineError),
+    #[error(transparent)]
+    Npy(#[from] NpyError),
+    #[error(transparent)]
+    Run(#[from] RunError),
+    #[error(
+        "input array has shape {found:?}; the model takes [batch, {}]",
+        fmt_dims(expected)
+    )]
+    InputShape {
+        found: Vec<usize>,
+        expected: Vec<usize>,
+    },
+    #[error(
+        "check samples do not replay: max error {max_abs_error:e} exceeds {bound:e}; the bundle is damaged or was made for different kernels"
+    )]
+    CheckFailed { max_abs_error: f32, bound: f32 },
+    #[error("writing to standard output: {0}")]
+    Stdout(std::io::Error),
+}
+
+fn fmt_dims(d: &[usize]) -> String {
+    d.iter()
+        .map(|x| x.to_string())
+        .collect::<Vec<_>>()
+        .join(", ")
+}
+
+/// Runs one parsed command.
+///
+/// # Errors
+/// The command's failure.
+pub fn dispatch(cli: Cli) -> Result<(), CliError> {
+    match cli.command {
+        Command::Inspect { bundle, json } => inspect::inspect(&bundle, json),
+        Command::Run {
+            bundle,
+            input,
+            output,
+            threads,
+            reject_non_finite,
+        } => run::run(&bundle, &input, &output, threads, reject_non_finite),
+    }
+}

@@ -1,0 +1,93 @@
+//! Short copies and fills for the packing and depthwise paths.
+//!
+//! The runs these kernels move are often shorter than 64 floats, where a `memcpy`/`memset`
+//! call costs more than the work; these helpers use fixed-size chunk moves the compiler emits
+//! inline (and widens to the vector registers of the calling instruction-set wrapper).
+
+/// Copies a short run with fixed-size chunk moves the compiler emits inline (the last chunk
+/// overlapping the previous one): im2col runs are often shorter than 64 floats, where a
+/// `memcpy` call costs more than the copy.
+#[inline(always)]
+pub(crate) fn copy_short(dst: &mut [f32], src: &[f32]) {
+    let n = dst.len();
+    let src = &src[..n];
+    if n >= 16 {
+        let mut i = 0;
+        while i + 16 <= n {
+            dst[i..i + 16].copy_from_slice(&src[i..i + 16]);
+            i += 16;
+        }
+        if i < n {
+            dst[n - 16..].copy_from_slice(&src[n - 16..]);
+        }
+    } else if n >= 4 {
+        let mut i = 0;
+        while i + 4 <= n {
+            dst[i..i + 4].copy_from_slice(&src[i..i + 4]);
+            i += 4;
+        }
+        if i < n {
+            dst[n - 4..].copy_from_slice(&src[n - 4..]);
+        }
+    } else {
+        // Written out: a loop here would be turned back into a `memcpy` call.
+        match n {
+            3 => dst.copy_from_slice(&src[..3]),
+            2 => dst.copy_from_slice(&src[..2]),
+            1 => dst[0] = src[0],
+            _ => {}
+        }
+    }
+}
+
+/// `dst[t] = src[2t]` (stride-2 convolutions), in fixed-size chunks the compiler turns into
+/// vector shuffles. `src.len() == 2 * dst.len() - 1`.
+#[inline(always)]
+pub(crate) fn copy_even(dst: &mut [f32], src: &[f32]) {
+    let mut chunks = dst.chunks_exact_mut(16);
+    let mut at = 0;
+    for chunk in &mut chunks {
+        // A constant-length window: the compiler drops the bounds checks below.
+        let s = &src[at..at + 31];
+        for (t, d) in chunk.iter_mut().enumerate() {
+            *d = s[2 * t];
+        }
+        at += 32;
+    }
+    for (t, d) in chunks.into_remainder().iter_mut().enumerate() {
+        *d = src[at + 2 * t];
+    }
+}
+
+/// Zero-fills a short run, like [`copy_short`].
+#[inline(always)]
+pub(crate) fn zero_short(dst: &mut [f32]) {
+    let n = dst.len();
+    if n >= 16 {
+        let mut i = 0;
+        while i + 16 <= n {
+            dst[i..i + 16].fill(0.0);
+            i += 16;
+        }
+        if i < n {
+            dst[n - 16..].fill(0.0);
+        }
+    } else if n >= 4 {
+        let mut i = 0;
+        while i + 4 <= n {
+            dst[i..i + 4].fill(0.0);
+            i += 4;
+        }
+        if i < n {
+            dst[n - 4..].fill(0.0);
+        }
+    } else {
+        // Written out: a loop here would be turned back into a `memset` call.
+        match n {
+            3 => dst[..3].copy_from_slice(&[0.0; 3]),
+            2 => dst[..2].copy_from_slice(&[0.0; 2]),
+            1 => dst[0] = 0.0,
+            _ => {}
+        }
+    }
+}

@@ -1,0 +1,14 @@
+//! CPU kernels: the inner loops of the executor, each taking checked parameters and slices.
+//!
+//! The instruction set is chosen once, when a model is loaded ([`isa::Isa::detect`]), and passed
+//! down explicitly; kernels never probe the CPU themselves.
+
+pub mod activation;
+mod copy;
+pub mod depthwise;
+pub mod gemm;
+pub mod isa;
+pub mod pool;
+mod simd;
+#[cfg(test)]
+mod testutil;

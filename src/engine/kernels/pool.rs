@@ -1,0 +1,248 @@
+//! Pooling, padding, concatenation, softmax and the other data-movement kernels of one sample.
+//!
+//! Each takes one sample's `[C, H, W]` (or flat) slice and writes one sample's output; the
+//! caller loops over the batch, so every sample is computed alone and batch invariance holds.
+
+/// Checked geometry of a pooling window over one sample.
+#[derive(Clone, Copy, Debug)]
+pub struct PoolGeom {
+    pub c: usize,
+    pub in_h: usize,
+    pub in_w: usize,
+    pub out_h: usize,
+    pub out_w: usize,
+    pub kernel: [usize; 2],
+    pub stride: [usize; 2],
+    pub dilation: [usize; 2],
+    /// Top, left, bottom, right.
+    pub padding: [usize; 4],
+}
+
+/// Max pooling; padding never wins (it counts as −∞).
+pub fn max_pool(g: &PoolGeom, input: &[f32], output: &mut [f32]) {
+    let (ih, iw) = (g.in_h as isize, g.in_w as isize);
+    for c in 0..g.c {
+        let plane = &input[c * g.in_h * g.in_w..][..g.in_h * g.in_w];
+        let out = &mut output[c * g.out_h * g.out_w..][..g.out_h * g.out_w];
+        for oy in 0..g.out_h {
+            let y0 = (oy * g.stride[0]) as isize - g.padding[0] as isize;
+            for ox in 0..g.out_w {
+                let x0 = (ox * g.stride[1]) as isize - g.padding[1] as isize;
+                let mut best = f32::NEG_INFINITY;
+                for i in 0..g.kernel[0] {
+                    let y = y0 + (i * g.dilation[0]) as isize;
+                    if y < 0 || y >= ih {
+                        continue;
+                    }
+                    let row = &plane[y as usize * g.in_w..][..g.in_w];
+                    for j in 0..g.kernel[1] {
+                        let x = x0 + (j * g.dilation[1]) as isize;
+                        if x < 0 || x >= iw {
+                            continue;
+                        }
+                        let v = row[x as usize];
+                        // NaN propagates, as in PyTorch: a NaN input must not vanish.
+                        if v > best || v.is_nan() {
+                            best = v;
+                        }
+                    }
+                }
+                out[oy * g.out_w + ox] = best;
+            }
+        }
+    }
+}
+
+/// Average pooling. With `count_include_pad` the divisor counts padding cells inside the padded
+/// input (but not cells past it that ceil mode adds); without, only real input cells — the
+/// rule PyTorch's `AvgPool2d` documents.
+pub fn avg_pool(g: &PoolGeom, count_include_pad: bool, input: &[f32], output: &mut [f32]) {
+    let (ih, iw) = (g.in_h as isize, g.in_w as isize);
+    let (pad_bottom, pad_right) = (g.padding[2] as isize, g.padding[3] as isize);
+    for c in 0..g.c {
+        let plane = &input[c * g.in_h * g.in_w..][..g.in_h * g.in_w];
+        let out = &mut output[c * g.out_h * g.out_w..][..g.out_h * g.out_w];
+        for oy in 0..g.out_h {
+            let ys = (oy * g.stride[0]) as isize - g.padding[0] as isize;
+            let ye_padded = (ys + g.kernel[0] as isize).min(ih + pad_bottom);
+            let (y0, y1) = (ys.max(0), ye_padded.min(ih));
+            for ox in 0..g.out_w {
+                let xs = (ox * g.stride[1]) as isize - g.padding[1] as isize;
+                let xe_padded = (xs + g.kernel[1] as isize).min(iw + pad_right);
+                let (x0, x1) = (xs.max(0), xe_padded.min(iw));
+                let mut sum = 0.0f32;
+                for y in y0..y1 {
+                    let row = &plane[y as usize * g.in_w..][..g.in_w];
+                    for x in x0..x1 {
+                        sum += row[x as usize];
+                    }
+                }
+                let count = if count_include_pad {
+                    (ye_padded - ys) * (xe_padded - xs)
+                } else {
+                    (y1 - y0).max(0) * (x1 - x0).max(0)
+                };
+                out[oy * g.out_w + ox] = if count > 0 { sum / count as f32 } else { 0.0 };
+            }
+        }
+    }
+}
+
+/// Mean of each channel plane: `[C, H, W]` → `[C]`.
+pub fn global_avg_pool(c: usize, plane: usize, input: &[f32], output: &mut [f32]) {
+    for (ch, out) in output[..c].iter_mut().enumerate() {
+        let sum: f32 = input[ch * plane..][..plane].iter().sum();
+        *out = sum / plane as f32;
+    }
+}
+
+/// Softmax over the leading axis of a `[C, inner]` sample (inner = 1 for a flat vector),
+/// stable against overflow by subtracting the maximum first.
+pub fn softmax(c: usize, inner: usize, input: &[f32], output: &mut [f32]) {
+    for p in 0..inner {
+        let mut max = f32::NEG_INFINITY;
+        for ch in 0..c {
+            max = max.max(input[ch * inner + p]);
+        }
+        let mut sum = 0.0f32;
+        for ch in 0..c {
+            let e = (input[ch * inner + p] - max).exp();
+            output[ch * inner + p] = e;
+            sum += e;
+        }
+        let inv = 1.0 / sum;
+        for ch in 0..c {
+            output[ch * inner + p] *= inv;
+        }
+    }
+}
+
+/// Constant padding of a `[C, H, W]` sample by top, left, bottom, right.
+pub fn pad(
+    c: usize,
+    h: usize,
+    w: usize,
+    padding: [usize; 4],
+    value: f32,
+    input: &[f32],
+    output: &mut [f32],
+) {
+    let (oh, ow) = (h + padding[0] + padding[2], w + padding[1] + padding[3]);
+    output[..c * oh * ow].fill(value);
+    for ch in 0..c {
+        for y in 0..h {
+            let src = &input[(ch * h + y) * w..][..w];
+            let dst = &mut output[(ch * oh + y + padding[0]) * ow + padding[1]..][..w];
+            dst.copy_from_slice(src);
+        }
+    }
+}
+
+/// `y = x · scale[c] + shift[c]` over a `[C, inner]` sample (batch normalisation folded to an
+/// affine map).
+pub fn channel_affine(
+    scale: &[f32],
+    shift: &[f32],
+    inner: usize,
+    input: &[f32],
+    output: &mut [f32],
+) {
+    for (ch, (&s, &t)) in scale.iter().zip(shift).enumerate() {
+        let src = &input[ch * inner..][..inner];
+        let dst = &mut output[ch * inner..][..inner];
+        for (d, &x) in dst.iter_mut().zip(src) {
+            *d = x * s + t;
+        }
+    }
+}
+
+/// How the second operand of an element-wise op lines up with the first.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Broadcast {
+    /// Same shape.
+    Full,
+    /// One value per channel, repeated over `inner` positions.
+    PerChannel { inner: usize },
+    /// One value for everything.
+    Scalar,
+}
+
+/// Element-wise `a ∘ b` where `b` is broadcast against `a` as `how` says.
+pub fn binary(how: Broadcast, mul: bool, a: &[f32], b: &[f32], out: &mut [f32]) {
+    let f = |x: f32, y: f32| if mul { x * y } else { x + y };
+    match how {
+        Broadcast::Full => {
+            for ((o, &x), &y) in out.iter_mut().zip(a).zip(b) {
+                *o = f(x, y);
+            }
+        }
+        Broadcast::PerChannel { inner } => {
+            for (ch, &y) in b.iter().enumerate() {
+                let src = &a[ch * inner..][..inner];
+                let dst = &mut out[ch * inner..][..inner];
+                for (o, &x) in dst.iter_mut().zip(src) {
+                    *o = f(x, y);
+                }
+            }
+        }
+        Broadcast::Scalar => {
+            let y = b[0];
+            for (o, &x) in out.iter_mut().zip(a) {
+                *o = f(x, y);
+            }
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn geom(h: usize, w: usize, k: usize, s: usize, p: usize, oh: usize, ow: usize) -> PoolGeom {
+        PoolGeom {
+            c: 1,
+            in_h: h,
+            in_w: w,
+            out_h: oh,
+            out_w: ow,
+            kernel: [k, k],
+            stride: [s, s],
+            dilation: [1, 1],
+            padding: [p, p, p, p],
+        }
+    }
+
+    // Hand-worked 4x4 example (common practice: 2x2 max pooling keeps each block's maximum).
+    #[test]
+    fn max_pool_2x2() {
+        let x: Vec<f32> = (0..16).map(|v| v as f32).collect();
+        let mut y = vec![0.0; 4];
+        max_pool(&geom(4, 4, 2, 2, 0, 2, 2), &x, &mut y);
+        assert_eq!(y, [5.0, 7.0, 13.0, 15.0]);
+    }
+
+    // 3x3 average with padding 1 on a 2x2 input of ones: PyTorch's documented divisor rule
+    // gives 4/9 with count_include_pad and 1 without.
+    #[test]
+    fn avg_pool_divisors() {
+        let x = vec![1.0f32; 4];
+        let mut y = vec![0.0; 4];
+        avg_pool(&geom(2, 2, 3, 1, 1, 2, 2), true, &x, &mut y);
+        assert!(y.iter().all(|&v| (v - 4.0 / 9.0).abs() < 1e-7));
+        avg_pool(&geom(2, 2, 3, 1, 1, 2, 2), false, &x, &mut y);
+        assert!(y.iter().all(|&v| (v - 1.0).abs() < 1e-7));
+    }
+
+    #[test]
+    fn softmax_is_stable_and_normalised() {
+        let x = [1000.0f32, 1001.0, 1002.0];
+        let mut y = [0.0; 3];
+        softmax(3, 1, &x, &mut y);
+        // softmax([0,1,2]) = e^k / (1 + e + e^2): 0.0900, 0.2447, 0.6652 (closed form).
+        let e = std::f32::consts::E;
+        let z = 1.0 + e + e * e;
+        for (got, want) in y.iter().zip([1.0 / z, e / z, e * e / z]) {
+            assert!((got - want).abs() < 1e-6);
+        }
+    }
+}

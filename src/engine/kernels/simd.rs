@@ -1,0 +1,297 @@
+//! The vector operations the kernels are written in, one zero-sized type per instruction set.
+//!
+//! Each kernel is ONE generic `#[inline(always)]` body over [`Simd`]; per instruction set a
+//! `#[target_feature]` wrapper instantiates it, so the body is compiled for that set. A value of
+//! [`Avx2`], [`Avx512`] or `Neon` can only be made after a run-time check ([`Machine::new`]), which
+//! is what makes calling their intrinsics sound; [`Scalar`] is plain Rust and always available.
+//!
+//! Every operation here is exactly one IEEE-754 operation per lane (or a comparison/select), so a
+//! lane computes the same bits as the [`Scalar`] version of the same op sequence. The one
+//! difference is [`Simd::fma`]: fused on the SIMD sets, `a*b + c` with two roundings on
+//! [`Scalar`], which may run on CPUs without fused multiply-add.
+
+use super::isa::Isa;
+
+/// One instruction set's vector type and operations.
+///
+/// Comparison-based operations mirror the x86 `maxps`/`minps` rule so NaN handling is identical
+/// everywhere: [`Simd::max`] is `if a > b { a } else { b }`, [`Simd::min`] is
+/// `if a < b { a } else { b }`.
+pub(crate) trait Simd: Copy {
+    /// A vector of [`Simd::LANES`] `f32`.
+    type V: Copy;
+    /// Number of `f32` lanes in [`Simd::V`].
+    const LANES: usize;
+    /// A narrower vector set usable in the same target-feature context (for short tails and
+    /// for the matrix kernel that vectorises along the weight rows).
+    type Narrow: Simd;
+
+    fn narrow(self) -> Self::Narrow;
+    fn zero(self) -> Self::V;
+    fn splat(self, x: f32) -> Self::V;
+    /// Loads `LANES` consecutive values.
+    ///
+    /// # Safety
+    /// `p` must be valid for reading `LANES` floats (no alignment needed).
+    unsafe fn load(self, p: *const f32) -> Self::V;
+    /// Stores `LANES` consecutive values.
+    ///
+    /// # Safety
+    /// `p` must be valid for writing `LANES` floats (no alignment needed).
+    unsafe fn store(self, p: *mut f32, v: Self::V);
+    /// Loads the first `n` lanes from `p`, zero in the others.
+    ///
+    /// # Safety
+    /// `p` must be valid for reading `n <= LANES` floats; nothing past them is touched.
+    unsafe fn load_partial(self, p: *const f32, n: usize) -> Self::V;
+    /// Stores the first `n` lanes of `v` to `p`.
+    ///
+    /// # Safety
+    /// `p` must be valid for writing `n <= LANES` floats; nothing past them is touched.
+    unsafe fn store_partial(self, p: *mut f32, v: Self::V, n: usize);
+    /// Loads `p[0], p[2], .., p[2*(LANES-1)]`.
+    ///
+    /// # Safety
+    /// `p` must be valid for reading `2*LANES` floats (one more than the last one used).
+    unsafe fn load_even(self, p: *const f32) -> Self::V;
+    /// `a*b + c`, fused except on [`Scalar`].
+    fn fma(self, a: Self::V, b: Self::V, c: Self::V) -> Self::V;
+    /// The scalar twin of [`Simd::fma`], rounding exactly as one lane of it does.
+    fn fma_s(self, a: f32, b: f32, c: f32) -> f32;
+    fn add(self, a: Self::V, b: Self::V) -> Self::V;
+    fn mul(self, a: Self::V, b: Self::V) -> Self::V;
+    fn div(self, a: Self::V, b: Self::V) -> Self::V;
+    /// `if a > b { a } else { b }` per lane.
+    fn max(self, a: Self::V, b: Self::V) -> Self::V;
+    /// `if a < b { a } else { b }` per lane.
+    fn min(self, a: Self::V, b: Self::V) -> Self::V;
+    /// `if a > b { t } else { f }` per lane.
+    fn select_gt(self, a: Self::V, b: Self::V, t: Self::V, f: Self::V) -> Self::V;
+}
+
+/// Plain Rust, one lane, no fused multiply-add.
+#[derive(Clone, Copy, Debug, Default)]
+pub(crate) struct Scalar;
+
+impl Simd for Scalar {
+    type V = f32;
+    const LANES: usize = 1;
+    type Narrow = Scalar;
+
+    #[inline(always)]
+    fn narrow(self) -> Scalar {
+        self
+    }
+    #[inline(always)]
+    fn zero(self) -> f32 {
+        0.0
+    }
+    #[inline(always)]
+    fn splat(self, x: f32) -> f32 {
+        x
+    }
+    #[inline(always)]
+    unsafe fn load(self, p: *const f32) -> f32 {
+        // SAFETY: the caller guarantees `p` is readable for one float.
+        unsafe { p.read_unaligned() }
+    }
+    #[inline(always)]
+    unsafe fn store(self, p: *mut f32, v: f32) {
+        // SAFETY: the caller guarantees `p` is writable for one float.
+        unsafe { p.write_unaligned(v) }
+    }
+    #[inline(always)]
+    unsafe fn load_partial(self, p: *const f32, n: usize) -> f32 {
+        // SAFETY: the caller guarantees `p` is readable for n floats.
+        if n > 0 {
+            unsafe { p.read_unaligned() }
+        } else {
+            0.0
+        }
+    }
+    #[inline(always)]
+    unsafe fn store_partial(self, p: *mut f32, v: f32, n: usize) {
+        if n > 0 {
+            // SAFETY: the caller guarantees `p` is writable for n floats.
+            unsafe { p.write_unaligned(v) }
+        }
+    }
+    #[inline(always)]
+    unsafe fn load_even(self, p: *const f32) -> f32 {
+        // SAFETY: the caller guarantees `p` is readable for two floats; one is used.
+        unsafe { p.read_unaligned() }
+    }
+    #[inline(always)]
+    fn fma(self, a: f32, b: f32, c: f32) -> f32 {
+        a * b + c
+    }
+    #[inline(always)]
+    fn fma_s(self, a: f32, b: f32, c: f32) -> f32 {
+        a * b + c
+    }
+    #[inline(always)]
+    fn add(self, a: f32, b: f32) -> f32 {
+        a + b
+    }
+    #[inline(always)]
+    fn mul(self, a: f32, b: f32) -> f32 {
+        a * b
+    }
+    #[inline(always)]
+    fn div(self, a: f32, b: f32) -> f32 {
+        a / b
+    }
+    #[inline(always)]
+    fn max(self, a: f32, b: f32) -> f32 {
+        if a > b { a } else { b }
+    }
+    #[inline(always)]
+    fn min(self, a: f32, b: f32) -> f32 {
+        if a < b { a } else { b }
+    }
+    #[inline(always)]
+    fn select_gt(self, a: f32, b: f32, t: f32, f: f32) -> f32 {
+        if a > b { t } else { f }
+    }
+}
+
+#[cfg(target_arch = "x86_64")]
+mod x86;
+#[cfg(target_arch = "x86_64")]
+pub(crate) use x86::{Avx2, Avx512};
+
+#[cfg(target_arch = "aarch64")]
+mod arm;
+#[cfg(target_arch = "aarch64")]
+pub(crate) use arm::Neon;
+
+/// A checked instruction set: the token its kernels need, made once at packing time.
+#[derive(Clone, Copy, Debug)]
+pub(crate) enum Machine {
+    Scalar(Scalar),
+    #[cfg(target_arch = "x86_64")]
+    Avx2(Avx2),
+    #[cfg(target_arch = "x86_64")]
+    Avx512(Avx512),
+    #[cfg(target_arch = "aarch64")]
+    Neon(Neon),
+}
+
+impl Machine {
+    /// The token for `isa`, or `None` if this CPU cannot run it.
+    pub(crate) fn new(isa: Isa) -> Option<Machine> {
+        if !isa.is_supported() {
+            return None;
+        }
+        match isa {
+            Isa::Scalar => Some(Machine::Scalar(Scalar)),
+            // SAFETY (both x86 arms): `is_supported` just confirmed the instruction sets.
+            #[cfg(target_arch = "x86_64")]
+            Isa::Avx2 => Some(Machine::Avx2(unsafe { Avx2::new_unchecked() })),
+            #[cfg(target_arch = "x86_64")]
+            Isa::Avx512 => Some(Machine::Avx512(unsafe { Avx512::new_unchecked() })),
+            // SAFETY: `is_supported` just confirmed Advanced SIMD.
+            #[cfg(target_arch = "aarch64")]
+            Isa::Neon => Some(Machine::Neon(unsafe { Neon::new_unchecked() })),
+            #[allow(unreachable_patterns)]
+            _ => None,
+        }
+    }
+
+    /// The token for `isa`, falling back to [`Scalar`] when this CPU cannot run it.
+    pub(crate) fn new_or_scalar(isa: Isa) -> Machine {
+        Machine::new(isa).unwrap_or(Machine::Scalar(Scalar))
+    }
+
+    pub(crate) fn isa(self) -> Isa {
+        match self {
+            Machine::Scalar(_) => Isa::Scalar,
+            #[cfg(target_arch = "x86_64")]
+            Machine::Avx2(_) => Isa::Avx2,
+            #[cfg(target_arch = "x86_64")]
+            Machine::Avx512(_) => Isa::Avx512,
+            #[cfg(target_arch = "aarch64")]
+            Machine::Neon(_) => Isa::Neon,
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Checks one instruction set's operations lane by lane against the scalar definitions.
+    fn check_ops<S: Simd>(s: S) {
+        let l = S::LANES;
+        let xs: Vec<f32> = (0..4 * l)
+            .map(|i| match i % 7 {
+                0 => f32::NAN,
+                1 => -0.0,
+                2 => 0.0,
+                _ => (i as f32 - 9.5) * 0.37,
+            })
+            .collect();
+        let ys: Vec<f32> = xs.iter().rev().copied().collect();
+        let mut out = vec![0.0f32; l];
+        let sc = Scalar;
+        // SAFETY: every pointer below addresses at least 2*LANES readable floats of `xs`/`ys`
+        // or LANES writable floats of `out`.
+        unsafe {
+            let (a, b) = (s.load(xs.as_ptr()), s.load(ys.as_ptr()));
+            type Op<S> = fn(S, <S as Simd>::V, <S as Simd>::V) -> <S as Simd>::V;
+            type ScalarOp = fn(Scalar, f32, f32) -> f32;
+            let ops: [(Op<S>, ScalarOp); 5] = [
+                (S::add, Scalar::add),
+                (S::mul, Scalar::mul),
+                (S::div, Scalar::div),
+                (S::max, Scalar::max),
+                (S::min, Scalar::min),
+            ];
+            for (op, sop) in ops {
+                s.store(out.as_mut_ptr(), op(s, a, b));
+                for i in 0..l {
+                    assert_eq!(
+                        out[i].to_bits(),
+                        sop(sc, xs[i], ys[i]).to_bits(),
+                        "lane {i}"
+                    );
+                }
+            }
+            s.store(out.as_mut_ptr(), s.select_gt(a, b, a, s.splat(7.0)));
+            for i in 0..l {
+                let e = if xs[i] > ys[i] { xs[i] } else { 7.0 };
+                assert_eq!(out[i].to_bits(), e.to_bits());
+            }
+            for n in 0..=l {
+                let mut dst = vec![-1.0f32; l];
+                s.store_partial(dst.as_mut_ptr(), s.load_partial(xs.as_ptr().add(2), n), n);
+                for i in 0..l {
+                    let e = if i < n { xs[2 + i] } else { -1.0 };
+                    assert_eq!(dst[i].to_bits(), e.to_bits(), "partial {n} lane {i}");
+                }
+            }
+            s.store(out.as_mut_ptr(), s.load_even(xs.as_ptr().add(1)));
+            for i in 0..l {
+                assert_eq!(out[i].to_bits(), xs[1 + 2 * i].to_bits());
+            }
+        }
+    }
+
+    #[test]
+    fn every_supported_set_matches_the_scalar_definitions() {
+        for isa in Isa::supported() {
+            match Machine::new(isa).expect("supported") {
+                Machine::Scalar(s) => check_ops(s),
+                #[cfg(target_arch = "x86_64")]
+                Machine::Avx2(s) => check_ops(s),
+                #[cfg(target_arch = "x86_64")]
+                Machine::Avx512(s) => {
+                    check_ops(s);
+                    check_ops(s.narrow());
+                }
+                #[cfg(target_arch = "aarch64")]
+                Machine::Neon(s) => check_ops(s),
+            }
+        }
+    }
+}

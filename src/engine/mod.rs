@@ -1,0 +1,291 @@
+//! The executor: turns a verified bundle into a plan and runs batches through it.
+//!
+//! Layout:
+//! - [`plan`]: bundle → [`Plan`] (folding, fusion, weight packing, buffer layout), once per
+//!   model version;
+//! - [`run`]: a batch through a plan in a reusable [`Workspace`];
+//! - [`kernels`]: the inner loops, picked per instruction set when the plan is built;
+//! - this file: [`Engine`], which owns a plan, checks inputs, splits a batch over threads and
+//!   replays a bundle's check samples.
+//!
+//! Threads: a batch is split into contiguous runs of samples, one per thread, each run in its
+//! own workspace. Samples never interact, so results are bitwise the same for any split, and
+//! no synchronisation happens inside a batch.
+
+pub mod kernels;
+pub mod plan;
+pub mod run;
+
+use std::sync::Mutex;
+
+use thiserror::Error;
+
+use crate::bundle::{Bundle, CHECK_TOLERANCE};
+pub use kernels::isa::{Isa, IsaError};
+pub use plan::Plan;
+pub use run::Workspace;
+
+/// How an engine runs.
+#[derive(Clone, Debug)]
+pub struct EngineConfig {
+    /// Threads one batch may use (1 = the calling thread only).
+    pub threads: usize,
+    /// Instruction set; `None` picks the best the CPU has (or `CONVOY_ISA`).
+    pub isa: Option<Isa>,
+    /// Largest batch one run accepts. Buffers grow to fit the largest batch seen, so this
+    /// bounds the engine's memory; the batching scheduler stays below it.
+    pub max_batch: usize,
+}
+
+impl Default for EngineConfig {
+    fn default() -> Self {
+        EngineConfig {
+            threads: 1,
+            isa: None,
+            max_batch: 1024,
+        }
+    }
+}
+
+/// Why an engine could not be built.
+#[derive(Debug, Error)]
+pub enum EngineError {
+    #[error(transparent)]
+    Isa(#[from] IsaError),
+    #[error("instruction set {isa:?} is not supported by this CPU")]
+    UnsupportedIsa { isa: Isa },
+    #[error("threads must be between 1 and {max}, got {threads}")]
+    Threads { threads: usize, max: usize },
+}
+
+/// Why a batch was refused.
+#[derive(Clone, Debug, PartialEq, Error)]
+pub enum RunError {
+    #[error("empty batch")]
+    EmptyBatch,
+    #[error("batch of {batch} samples exceeds this engine's limit of {limit}")]
+    BatchTooLarge { batch: usize, limit: usize },
+    #[error(
+        "input has {found} values; a batch of {batch} samples of shape {shape:?} needs {expected}"
+    )]
+    InputLength {
+        batch: usize,
+        shape: Vec<usize>,
+        expected: usize,
+        found: usize,
+    },
+    #[error("sample {sample} has a non-finite value at element {index}")]
+    NonFinite { sample: usize, index: usize },
+}
+
+/// Options of one run.
+#[derive(Clone, Copy, Debug, Default)]
+pub struct RunOptions {
+    /// Refuse inputs holding NaN or infinity instead of computing with them.
+    pub reject_non_finite: bool,
+}
+
+/// A plan with its workspaces: the thing that answers batches.
+pub struct Engine {
+    plan: Plan,
+    threads: usize,
+    max_batch: usize,
+    /// Idle workspaces; a std `Mutex` because it is held for a push or pop only, never across
+    /// an await or a kernel.
+    workspaces: Mutex<Vec<Workspace>>,
+}
+
+/// Result of replaying a bundle's check samples.
+#[derive(Clone, Debug, PartialEq)]
+pub struct CheckReport {
+    pub samples: usize,
+    /// Largest `|ours - stored|`.
+    pub max_abs_error: f32,
+    /// The bound it had to stay under: `CHECK_TOLERANCE · max(1, max |stored|)`.
+    pub bound: f32,
+    pub passed: bool,
+    pub produced_by: String,
+}
+
+impl Engine {
+    /// Plans `bundle`.
+    ///
+    /// # Errors
+    /// An instruction set forced by configuration or `CONVOY_ISA` that the CPU lacks; a thread
+    /// count of 0 or above 256.
+    pub fn new(bundle: &Bundle, config: &EngineConfig) -> Result<Engine, EngineError> {
+        if config.threads == 0 || config.threads > 256 {
+            return Err(EngineError::Threads {
+                threads: config.threads,
+                max: 256,
+            });
+        }
+        let isa = match config.isa {
+            Some(isa) if isa.is_supported() => isa,
+            Some(isa) => return Err(EngineError::UnsupportedIsa { isa }),
+            None => Isa::detect()?,
+        };
+        Ok(Engine {
+            plan: Plan::new(bundle, isa),
+            threads: config.threads,
+            max_batch: config.max_batch,
+            workspaces: Mutex::new(Vec::new()),
+        })
+    }
+
+    pub fn plan(&self) -> &Plan {
+        &self.plan
+    }
+
+    pub fn threads(&self) -> usize {
+        self.threads
+    }
+
+    fn take_workspace(&self) -> Workspace {
+        // A poisoned lock only means another thread panicked between push and pop; the Vec
+        // is still a valid list of workspaces.
+        let mut pool = self.workspaces.lock().unwrap_or_else(|p| p.into_inner());
+        pool.pop().unwrap_or_default()
+    }
+
+    fn give_workspace(&self, ws: Workspace) {
+        let mut pool = self.workspaces.lock().unwrap_or_else(|p| p.into_inner());
+        pool.push(ws);
+    }
+
+    /// Runs `batch` samples (row-major, back to back) and returns the outputs, back to back.
+    ///
+    /// # Errors
+    /// An empty batch, a batch above the configured limit, an input of the wrong length, or
+    /// (if asked) non-finite input values.
+    pub fn run(
+        &self,
+        input: &[f32],
+        batch: usize,
+        options: RunOptions,
+    ) -> Result<Vec<f32>, RunError> {
+        let mut out = vec![0.0; batch * self.plan.output_len()];
+        self.run_into(input, batch, options, &mut out)?;
+        Ok(out)
+    }
+
+    /// As [`Engine::run`], writing into `output` (`batch · output_len` values).
+    ///
+    /// # Errors
+    /// As [`Engine::run`].
+    ///
+    /// # Panics
+    /// If `output` does not hold `batch · output_len` values: that is a bug in the caller,
+    /// not bad input.
+    pub fn run_into(
+        &self,
+        input: &[f32],
+        batch: usize,
+        options: RunOptions,
+        output: &mut [f32],
+    ) -> Result<(), RunError> {
+        if batch == 0 {
+            return Err(RunError::EmptyBatch);
+        }
+        if batch > self.max_batch {
+            return Err(RunError::BatchTooLarge {
+                batch,
+                limit: self.max_batch,
+            });
+        }
+        let in_len = self.plan.input_len();
+        let out_len = self.plan.output_len();
+        let expected = batch.saturating_mul(in_len);
+        if input.len() != expected {
+            return Err(RunError::InputLength {
+                batch,
+                shape: self.plan.input_shape().to_vec(),
+                expected,
+                found: input.len(),
+            });
+        }
+        assert_eq!(output.len(), batch * out_len, "output buffer length");
+        if options.reject_non_finite
+            && let Some(i) = input.iter().position(|v| !v.is_finite())
+        {
+            return Err(RunError::NonFinite {
+                sample: i / in_len,
+                index: i % in_len,
+            });
+        }
+        let parts = self.threads.min(batch);
+        if parts == 1 {
+            let mut ws = self.take_workspace();
+            self.plan.run_unchecked(input, batch, &mut ws, output);
+            self.give_workspace(ws);
+            return Ok(());
+        }
+        // Contiguous runs of samples, the first ones one sample longer when it does not divide.
+        let base = batch / parts;
+        let extra = batch % parts;
+        std::thread::scope(|scope| {
+            let mut rest_in = input;
+            let mut rest_out = &mut *output;
+            let mut mine = None;
+            for p in 0..parts {
+                let n = base + usize::from(p < extra);
+                let (i, ri) = rest_in.split_at(n * in_len);
+                let (o, ro) = rest_out.split_at_mut(n * out_len);
+                rest_in = ri;
+                rest_out = ro;
+                if p == 0 {
+                    mine = Some((i, o, n));
+                } else {
+                    scope.spawn(move || {
+                        let mut ws = self.take_workspace();
+                        self.plan.run_unchecked(i, n, &mut ws, o);
+                        self.give_workspace(ws);
+                    });
+                }
+            }
+            if let Some((i, o, n)) = mine {
+                let mut ws = self.take_workspace();
+                self.plan.run_unchecked(i, n, &mut ws, o);
+                self.give_workspace(ws);
+            }
+        });
+        Ok(())
+    }
+
+    /// Replays the bundle's check samples and compares with the stored outputs.
+    /// Returns `None` when the bundle carries none.
+    pub fn replay_check_samples(&self, bundle: &Bundle) -> Option<CheckReport> {
+        let cs = bundle.manifest().check_samples.as_ref()?;
+        let input = bundle.tensor(&cs.input)?;
+        let expected = bundle.tensor(&cs.output)?;
+        let got = self.run(&input, cs.count, RunOptions::default()).ok()?;
+        let (max_abs_error, bound) = tolerance_check(&got, &expected);
+        Some(CheckReport {
+            samples: cs.count,
+            max_abs_error,
+            bound,
+            passed: max_abs_error <= bound,
+            produced_by: cs.produced_by.clone(),
+        })
+    }
+}
+
+/// `(max |got - want|, CHECK_TOLERANCE · max(1, max |want|))`; a NaN anywhere counts as an
+/// infinite error.
+pub fn tolerance_check(got: &[f32], want: &[f32]) -> (f32, f32) {
+    let scale = want.iter().fold(1.0f32, |m, v| m.max(v.abs()));
+    let mut err = if got.len() == want.len() {
+        0.0f32
+    } else {
+        f32::INFINITY
+    };
+    for (g, w) in got.iter().zip(want) {
+        let d = (g - w).abs();
+        err = if d.is_nan() {
+            f32::INFINITY
+        } else {
+            err.max(d)
+        };
+    }
+    (err, CHECK_TOLERANCE * scale)
+}

@@ -1,0 +1,267 @@
+//! Folding and fusion on the plan's internal node list, before kernels are chosen.
+
+use std::collections::HashMap;
+
+use super::ValueId;
+use crate::engine::kernels::activation::Activation;
+
+/// Internal node before lowering.
+pub(super) struct IrNode {
+    pub(super) name: String,
+    pub(super) kind: IrKind,
+    pub(super) inputs: Vec<ValueId>,
+    pub(super) output: ValueId,
+}
+
+pub(super) enum IrKind {
+    Conv {
+        weight: Vec<f32>,
+        bias: Option<Vec<f32>>,
+        wshape: [usize; 4],
+        stride: [usize; 2],
+        dilation: [usize; 2],
+        padding: [usize; 4],
+        groups: usize,
+        residual: Option<ValueId>,
+        act: Activation,
+    },
+    Dense {
+        /// `[out, in]` row-major.
+        weight: Vec<f32>,
+        bias: Option<Vec<f32>>,
+        out: usize,
+        act: Activation,
+    },
+    BatchNorm {
+        gamma: Vec<f32>,
+        beta: Vec<f32>,
+        mean: Vec<f32>,
+        variance: Vec<f32>,
+        epsilon: f32,
+    },
+    Act(Activation),
+    MaxPool {
+        kernel: [usize; 2],
+        stride: [usize; 2],
+        padding: [usize; 4],
+        dilation: [usize; 2],
+    },
+    AvgPool {
+        kernel: [usize; 2],
+        stride: [usize; 2],
+        padding: [usize; 4],
+        count_include_pad: bool,
+    },
+    GlobalAvgPool,
+    Binary {
+        mul: bool,
+        constant: Option<(Vec<f32>, Vec<usize>)>,
+    },
+    Concat,
+    Softmax,
+    Pad {
+        padding: [usize; 4],
+        value: f32,
+    },
+    /// Removed by a fusion.
+    Gone,
+}
+
+/// Counts how many live nodes read each value (the graph output counts as one more reader).
+/// Reads through an alias count against the node output that holds the data.
+fn readers(nodes: &[IrNode], alias_of: &[ValueId], graph_output: ValueId) -> Vec<usize> {
+    let n_values = alias_of.len();
+    let mut count = vec![0usize; n_values];
+    for n in nodes {
+        if matches!(n.kind, IrKind::Gone) {
+            continue;
+        }
+        for &i in &n.inputs {
+            count[alias_of[i]] += 1;
+        }
+        if let IrKind::Conv {
+            residual: Some(r), ..
+        } = n.kind
+        {
+            count[alias_of[r]] += 1;
+        }
+    }
+    count[alias_of[graph_output]] += 1;
+    count
+}
+
+pub(super) fn fuse(
+    nodes: &mut Vec<IrNode>,
+    graph_output: ValueId,
+    value_shape: &[Vec<usize>],
+    alias_of: &[ValueId],
+    folded: &mut Vec<String>,
+) {
+    let producer_of = |nodes: &Vec<IrNode>| -> HashMap<ValueId, usize> {
+        nodes
+            .iter()
+            .enumerate()
+            .filter(|(_, n)| !matches!(n.kind, IrKind::Gone))
+            .map(|(i, n)| (n.output, i))
+            .collect()
+    };
+
+    // Every fusion below needs a direct connection: through a reshape, "per channel" would
+    // no longer mean the same channels.
+    // Batch norm into the conv or dense layer feeding it.
+    for i in 0..nodes.len() {
+        let IrKind::BatchNorm { .. } = nodes[i].kind else {
+            continue;
+        };
+        let src = nodes[i].inputs[0];
+        let count = readers(nodes, alias_of, graph_output);
+        let producers = producer_of(nodes);
+        let Some(&p) = producers.get(&src) else {
+            continue;
+        };
+        if alias_of[src] != src || count[src] != 1 {
+            continue;
+        }
+        let foldable = matches!(
+            nodes[p].kind,
+            IrKind::Conv {
+                act: Activation::Identity,
+                residual: None,
+                ..
+            } | IrKind::Dense {
+                act: Activation::Identity,
+                ..
+            }
+        );
+        if !foldable {
+            continue;
+        }
+        let IrKind::BatchNorm {
+            gamma,
+            beta,
+            mean,
+            variance,
+            epsilon,
+        } = std::mem::replace(&mut nodes[i].kind, IrKind::Gone)
+        else {
+            unreachable!("matched above")
+        };
+        let out = nodes[i].output;
+        let bn_name = nodes[i].name.clone();
+        let (weight, bias, per_row) = match &mut nodes[p].kind {
+            IrKind::Conv {
+                weight,
+                bias,
+                wshape,
+                ..
+            } => {
+                let per = wshape[1] * wshape[2] * wshape[3];
+                (weight, bias, per)
+            }
+            IrKind::Dense {
+                weight, bias, out, ..
+            } => {
+                let per = weight.len() / *out;
+                (weight, bias, per)
+            }
+            _ => unreachable!("checked foldable"),
+        };
+        let channels = gamma.len();
+        let old_bias = bias.take().unwrap_or_else(|| vec![0.0; channels]);
+        let mut new_bias = vec![0.0f32; channels];
+        for c in 0..channels {
+            // f64 so that folding adds no rounding of its own beyond the final cast.
+            let s = f64::from(gamma[c]) / (f64::from(variance[c]) + f64::from(epsilon)).sqrt();
+            for w in &mut weight[c * per_row..(c + 1) * per_row] {
+                *w = (f64::from(*w) * s) as f32;
+            }
+            new_bias[c] =
+                ((f64::from(old_bias[c]) - f64::from(mean[c])) * s + f64::from(beta[c])) as f32;
+        }
+        *bias = Some(new_bias);
+        nodes[p].output = out;
+        folded.push(format!("{bn_name} folded into {}", nodes[p].name));
+    }
+
+    // Residual add into a conv producing one operand; the conv moves to the add's place.
+    for i in 0..nodes.len() {
+        let IrKind::Binary {
+            constant: None,
+            mul: false,
+        } = nodes[i].kind
+        else {
+            continue;
+        };
+        let (a, b) = (nodes[i].inputs[0], nodes[i].inputs[1]);
+        if value_shape[a] != value_shape[b] || a == b {
+            continue;
+        }
+        let count = readers(nodes, alias_of, graph_output);
+        let producers = producer_of(nodes);
+        let pick = [(a, b), (b, a)].into_iter().find(|&(conv_out, _)| {
+            alias_of[conv_out] == conv_out
+                && count[conv_out] == 1
+                && producers.get(&conv_out).is_some_and(|&p| {
+                    matches!(
+                        nodes[p].kind,
+                        IrKind::Conv {
+                            act: Activation::Identity,
+                            residual: None,
+                            ..
+                        }
+                    )
+                })
+        });
+        let Some((conv_out, other)) = pick else {
+            continue;
+        };
+        let p = producers[&conv_out];
+        let add = std::mem::replace(&mut nodes[i].kind, IrKind::Gone);
+        drop(add);
+        let mut conv = std::mem::replace(
+            &mut nodes[p],
+            IrNode {
+                name: String::new(),
+                kind: IrKind::Gone,
+                inputs: Vec::new(),
+                output: 0,
+            },
+        );
+        if let IrKind::Conv { residual, .. } = &mut conv.kind {
+            *residual = Some(other);
+        }
+        folded.push(format!("{} added into {}", nodes[i].name, conv.name));
+        conv.output = nodes[i].output;
+        nodes[i] = conv;
+    }
+
+    // Activation into the conv or dense layer feeding it.
+    for i in 0..nodes.len() {
+        let IrKind::Act(a) = nodes[i].kind else {
+            continue;
+        };
+        let src = nodes[i].inputs[0];
+        let count = readers(nodes, alias_of, graph_output);
+        let producers = producer_of(nodes);
+        let Some(&p) = producers.get(&src) else {
+            continue;
+        };
+        if alias_of[src] != src || count[src] != 1 {
+            continue;
+        }
+        let slot = match &mut nodes[p].kind {
+            IrKind::Conv { act, .. } | IrKind::Dense { act, .. }
+                if *act == Activation::Identity =>
+            {
+                act
+            }
+            _ => continue,
+        };
+        *slot = a;
+        let out = nodes[i].output;
+        nodes[i].kind = IrKind::Gone;
+        folded.push(format!("{} fused into {}", nodes[i].name, nodes[p].name));
+        nodes[p].output = out;
+    }
+    nodes.retain(|n| !matches!(n.kind, IrKind::Gone));
+}

@@ -1,0 +1,358 @@
+//! Builds an execution plan from a verified bundle: folds, fuses, packs and lays out buffers.
+//!
+//! Steps, in order:
+//! 1. translate graph nodes into an internal list where reshape, flatten and identity are mere
+//!    aliases of their input (they move no data);
+//! 2. fold batch normalisation into the convolution or dense layer that feeds it;
+//! 3. fuse a residual `add` into the convolution that produces one of its operands (the conv
+//!    moves to the add's position and adds the other operand in its epilogue);
+//! 4. fuse an activation into the convolution or dense layer that produces its input;
+//! 5. pack weights for the chosen instruction set and assign every value a buffer, reusing
+//!    buffers whose values are dead, so a run allocates nothing per layer.
+//!
+//! Folding and fusing change rounding only (a product of two f32 factors is formed once,
+//! rather than in two steps), well inside the executor's tolerance.
+
+use std::collections::HashMap;
+
+mod fuse;
+mod lower;
+
+use super::kernels::activation::Activation;
+use super::kernels::depthwise::PackedDepthwise;
+use super::kernels::gemm::{ConvGeom, PackedWeights};
+use super::kernels::isa::Isa;
+use super::kernels::pool::{Broadcast, PoolGeom};
+use crate::bundle::Bundle;
+use crate::graph::{GeluApproximation, Op, WeightLayout};
+use fuse::{IrKind, IrNode, fuse};
+use lower::lower;
+
+/// Index of a value in the plan.
+pub(crate) type ValueId = usize;
+
+/// A convolution, ready to run.
+pub(crate) struct ConvStep {
+    pub geom: ConvGeom,
+    pub groups: usize,
+    pub out_c: usize,
+    pub kind: ConvKind,
+    pub bias: Option<Vec<f32>>,
+    pub residual: Option<ValueId>,
+    pub act: Activation,
+}
+
+pub(crate) enum ConvKind {
+    /// One packed matrix per group; `pointwise` means 1×1, stride 1, no padding, so the input
+    /// is the B matrix itself.
+    Gemm {
+        groups: Vec<PackedWeights>,
+        pointwise: bool,
+    },
+    Depthwise(PackedDepthwise),
+}
+
+/// What one step does.
+pub(crate) enum StepKind {
+    Conv(Box<ConvStep>),
+    Dense {
+        weights: PackedWeights,
+        bias: Option<Vec<f32>>,
+        act: Activation,
+    },
+    Affine {
+        scale: Vec<f32>,
+        shift: Vec<f32>,
+        inner: usize,
+    },
+    Act(Activation),
+    MaxPool(PoolGeom),
+    AvgPool {
+        geom: PoolGeom,
+        count_include_pad: bool,
+    },
+    GlobalAvgPool {
+        c: usize,
+        plane: usize,
+    },
+    /// `a ∘ b` with `b` another value or a constant.
+    Binary {
+        mul: bool,
+        how: Broadcast,
+        /// When the value operand is the broadcast (smaller) one, inputs are swapped so that
+        /// `inputs[0]` is always the full-size operand; add and mul commute.
+        constant: Option<Vec<f32>>,
+    },
+    Concat {
+        /// Elements per sample of each input.
+        sizes: Vec<usize>,
+    },
+    Softmax {
+        c: usize,
+        inner: usize,
+    },
+    Pad {
+        c: usize,
+        h: usize,
+        w: usize,
+        padding: [usize; 4],
+        value: f32,
+    },
+}
+
+/// One step of the plan: reads `inputs`, writes `output`.
+pub(crate) struct Step {
+    /// The graph node this step came from (after fusion, the producing node), for logs.
+    pub name: String,
+    pub kind: StepKind,
+    pub inputs: Vec<ValueId>,
+    pub output: ValueId,
+}
+
+/// A ready-to-run model: immutable, shared between threads.
+pub struct Plan {
+    pub(crate) isa: Isa,
+    pub(crate) steps: Vec<Step>,
+    /// Per-sample elements of each value.
+    pub(crate) value_len: Vec<usize>,
+    /// Buffer holding each value (aliases share one).
+    pub(crate) value_buffer: Vec<usize>,
+    /// Per-sample capacity of each buffer.
+    pub(crate) buffer_len: Vec<usize>,
+    pub(crate) input: ValueId,
+    pub(crate) output: ValueId,
+    pub(crate) input_shape: Vec<usize>,
+    pub(crate) output_shape: Vec<usize>,
+    /// What folding and fusion did, one line each, for `convoy inspect`.
+    pub(crate) folded: Vec<String>,
+}
+
+impl std::fmt::Debug for Plan {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("Plan")
+            .field("isa", &self.isa)
+            .field(
+                "steps",
+                &self
+                    .steps
+                    .iter()
+                    .map(|s| s.name.as_str())
+                    .collect::<Vec<_>>(),
+            )
+            .field("buffers", &self.buffer_len.len())
+            .finish()
+    }
+}
+fn activation_of(op: &Op) -> Option<Activation> {
+    Some(match *op {
+        Op::Relu => Activation::Relu,
+        Op::Clip { min, max } => Activation::Clip { min, max },
+        Op::LeakyRelu { slope } => Activation::LeakyRelu { slope },
+        Op::Sigmoid => Activation::Sigmoid,
+        Op::Tanh => Activation::Tanh,
+        Op::HardSigmoid { alpha, beta } => Activation::HardSigmoid { alpha, beta },
+        Op::HardSwish => Activation::HardSwish,
+        Op::Silu => Activation::Silu,
+        Op::Gelu {
+            approximation: GeluApproximation::None,
+        } => Activation::Gelu,
+        Op::Gelu {
+            approximation: GeluApproximation::Tanh,
+        } => Activation::GeluTanh,
+        _ => return None,
+    })
+}
+
+impl Plan {
+    /// Plans `bundle` for instruction set `isa`. The bundle was verified when it was read, so
+    /// every name resolves and every shape fits; planning cannot fail.
+    pub fn new(bundle: &Bundle, isa: Isa) -> Plan {
+        let graph = &bundle.manifest().graph;
+        let shapes = bundle.shapes();
+        let tensor = |name: &str| -> Vec<f32> {
+            // Verified bundle: every tensor a node names exists (shapes::infer checked it).
+            bundle.tensor(name).expect("verified tensor").into_owned()
+        };
+
+        // Values: graph input first, then one per node output; aliases point at their source.
+        let mut ids: HashMap<&str, ValueId> = HashMap::new();
+        let mut value_shape: Vec<Vec<usize>> = Vec::new();
+        let mut alias_of: Vec<ValueId> = Vec::new();
+        ids.insert(graph.input.name.as_str(), 0);
+        value_shape.push(graph.input.shape.clone());
+        alias_of.push(0);
+        let mut nodes: Vec<IrNode> = Vec::new();
+        for (node, out_shape) in graph.nodes.iter().zip(&shapes.node_outputs) {
+            // Inputs keep their own value ids (an alias has its own shape); `alias_of` says
+            // which node output actually holds the data.
+            let inputs: Vec<ValueId> = node.inputs.iter().map(|v| ids[v.as_str()]).collect();
+            let out = value_shape.len();
+            value_shape.push(out_shape.clone());
+            ids.insert(node.output.as_str(), out);
+            let kind = match &node.op {
+                Op::Flatten | Op::Reshape { .. } | Op::Identity => {
+                    alias_of.push(alias_of[inputs[0]]);
+                    continue;
+                }
+                Op::Conv2d {
+                    weight,
+                    bias,
+                    stride,
+                    dilation,
+                    padding,
+                    groups,
+                } => {
+                    let ws = bundle.tensor_shape(weight).unwrap_or_default();
+                    IrKind::Conv {
+                        weight: tensor(weight),
+                        bias: bias.as_deref().map(tensor),
+                        wshape: [ws[0], ws[1], ws[2], ws[3]],
+                        stride: *stride,
+                        dilation: *dilation,
+                        padding: *padding,
+                        groups: *groups,
+                        residual: None,
+                        act: Activation::Identity,
+                    }
+                }
+                Op::Dense {
+                    weight,
+                    bias,
+                    weight_layout,
+                } => {
+                    let ws = bundle.tensor_shape(weight).unwrap_or_default();
+                    let w = tensor(weight);
+                    let (out, weight) = match weight_layout {
+                        WeightLayout::OutIn => (ws[0], w),
+                        WeightLayout::InOut => {
+                            let (inp, out) = (ws[0], ws[1]);
+                            let mut t = vec![0.0; w.len()];
+                            for i in 0..inp {
+                                for o in 0..out {
+                                    t[o * inp + i] = w[i * out + o];
+                                }
+                            }
+                            (out, t)
+                        }
+                    };
+                    IrKind::Dense {
+                        weight,
+                        bias: bias.as_deref().map(tensor),
+                        out,
+                        act: Activation::Identity,
+                    }
+                }
+                Op::BatchNorm {
+                    gamma,
+                    beta,
+                    mean,
+                    variance,
+                    epsilon,
+                } => IrKind::BatchNorm {
+                    gamma: tensor(gamma),
+                    beta: tensor(beta),
+                    mean: tensor(mean),
+                    variance: tensor(variance),
+                    epsilon: *epsilon,
+                },
+                Op::MaxPool {
+                    kernel,
+                    stride,
+                    padding,
+                    dilation,
+                    ..
+                } => IrKind::MaxPool {
+                    kernel: *kernel,
+                    stride: stride.unwrap_or(*kernel),
+                    padding: *padding,
+                    dilation: *dilation,
+                },
+                Op::AvgPool {
+                    kernel,
+                    stride,
+                    padding,
+                    count_include_pad,
+                    ..
+                } => IrKind::AvgPool {
+                    kernel: *kernel,
+                    stride: stride.unwrap_or(*kernel),
+                    padding: *padding,
+                    count_include_pad: *count_include_pad,
+                },
+                Op::GlobalAvgPool => IrKind::GlobalAvgPool,
+                Op::Add { constant } | Op::Mul { constant } => IrKind::Binary {
+                    mul: matches!(node.op, Op::Mul { .. }),
+                    constant: constant
+                        .as_deref()
+                        .map(|c| (tensor(c), bundle.tensor_shape(c).unwrap_or_default())),
+                },
+                Op::Concat => IrKind::Concat,
+                Op::Softmax => IrKind::Softmax,
+                Op::Pad { padding, value } => IrKind::Pad {
+                    padding: *padding,
+                    value: *value,
+                },
+                op => match activation_of(op) {
+                    Some(a) => IrKind::Act(a),
+                    None => unreachable!("every op kind is handled above"),
+                },
+            };
+            alias_of.push(out);
+            nodes.push(IrNode {
+                name: node.name.clone(),
+                kind,
+                inputs,
+                output: out,
+            });
+        }
+        let graph_output = ids[graph.output.as_str()];
+        let mut folded = Vec::new();
+        fuse(
+            &mut nodes,
+            graph_output,
+            &value_shape,
+            &alias_of,
+            &mut folded,
+        );
+        lower(nodes, isa, value_shape, alias_of, graph_output, folded)
+    }
+
+    pub fn isa(&self) -> Isa {
+        self.isa
+    }
+
+    /// Per-sample input shape.
+    pub fn input_shape(&self) -> &[usize] {
+        &self.input_shape
+    }
+
+    /// Per-sample output shape.
+    pub fn output_shape(&self) -> &[usize] {
+        &self.output_shape
+    }
+
+    /// Per-sample input elements.
+    pub fn input_len(&self) -> usize {
+        self.value_len[self.input]
+    }
+
+    /// Per-sample output elements.
+    pub fn output_len(&self) -> usize {
+        self.value_len[self.output]
+    }
+
+    /// Names of the steps after fusion, with what was folded into them.
+    pub fn folded(&self) -> &[String] {
+        &self.folded
+    }
+
+    /// Number of steps a batch passes through.
+    pub fn step_count(&self) -> usize {
+        self.steps.len()
+    }
+
+    /// Bytes of activation buffers one sample needs.
+    pub fn bytes_per_sample(&self) -> usize {
+        self.buffer_len.iter().sum::<usize>() * 4
+    }
+}

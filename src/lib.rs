@@ -1,0 +1,14 @@
+//! convoy: serve small convolutional image classifiers from plain CPU servers.
+//!
+//! Layout, following a model's path from file to answer:
+//! - [`bundle`]: the `.cvb` weight bundle — writer, and a reader that verifies everything;
+//! - [`graph`]: the model graph stored in a bundle, its shape checks and cost counts;
+//! - [`engine`]: plans a bundle for this CPU and runs batches through it;
+//! - [`npy`]: NumPy `.npy` files, the exchange format of the command line;
+//! - [`cli`]: the `convoy` commands, which the thin binary in `main.rs` dispatches to.
+
+pub mod bundle;
+pub mod cli;
+pub mod engine;
+pub mod graph;
+pub mod npy;
