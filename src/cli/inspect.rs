@@ -112,6 +112,14 @@ pub fn inspect(path: &Path, json: bool) -> Result<(), CliError> {
     }
 }
 
+/// A manifest enum as the manifest spells it (`logits`, `center_crop`).
+fn spelled<T: Serialize>(v: &T) -> String {
+    serde_json::to_value(v)
+        .ok()
+        .and_then(|j| j.as_str().map(str::to_string))
+        .unwrap_or_default()
+}
+
 fn with_commas(n: u64) -> String {
     let s = n.to_string();
     let mut out = String::new();
@@ -148,18 +156,23 @@ fn render_text(r: &Report<'_>) -> String {
     if let Some(img) = &r.input.image {
         let _ = writeln!(
             s,
-            "  image    {:?} {}x{}, resize {:?}, fit {:?}, scale {}, mean {:?}, std {:?}",
-            img.color,
+            "  image    {} {}x{}, resize {}, fit {}, scale {}, mean {:?}, std {:?}",
+            spelled(&img.color),
             img.width,
             img.height,
-            img.resize_filter,
-            img.fit,
+            spelled(&img.resize_filter),
+            spelled(&img.fit),
             img.scale,
             img.mean,
             img.std
         );
     }
-    let _ = writeln!(s, "output     {:?} {:?}", r.output.shape, r.output.kind);
+    let _ = writeln!(
+        s,
+        "output     {:?} {}",
+        r.output.shape,
+        spelled(&r.output.kind)
+    );
     if !r.output.labels.is_empty() {
         let shown: Vec<&str> = r
             .output
