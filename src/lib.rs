@@ -11,4 +11,5 @@ pub mod bundle;
 pub mod cli;
 pub mod engine;
 pub mod graph;
+pub mod import;
 pub mod npy;

@@ -5,7 +5,7 @@ use std::path::Path;
 
 use serde::Serialize;
 
-use super::CliError;
+use super::{CliError, with_commas};
 use crate::bundle::manifest::{InputSpec, OutputKind};
 use crate::bundle::{Bundle, FORMAT_VERSION};
 use crate::engine::{CheckReport, Engine, EngineConfig};
@@ -118,18 +118,6 @@ fn spelled<T: Serialize>(v: &T) -> String {
         .ok()
         .and_then(|j| j.as_str().map(str::to_string))
         .unwrap_or_default()
-}
-
-fn with_commas(n: u64) -> String {
-    let s = n.to_string();
-    let mut out = String::new();
-    for (i, c) in s.chars().enumerate() {
-        if i > 0 && (s.len() - i).is_multiple_of(3) {
-            out.push(',');
-        }
-        out.push(c);
-    }
-    out
 }
 
 fn render_text(r: &Report<'_>) -> String {

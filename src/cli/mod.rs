@@ -3,6 +3,7 @@
 //! Commands print for people by default and for programs with `--json`; failures come back as
 //! [`CliError`] so `main` can print one clear line and exit non-zero.
 
+mod import;
 mod inspect;
 mod run;
 
@@ -13,6 +14,7 @@ use thiserror::Error;
 
 use crate::bundle::BundleError;
 use crate::engine::{EngineError, RunError};
+use crate::import::ImportError;
 use crate::npy::NpyError;
 
 /// Serve small convolutional image classifiers from plain CPU servers.
@@ -34,6 +36,8 @@ pub enum Command {
         #[arg(long)]
         json: bool,
     },
+    /// Convert an ONNX model exported by a training framework into a bundle.
+    Import(Box<import::ImportArgs>),
     /// Run a batch from a NumPy file through a bundle and write the raw graph output.
     Run {
         /// The bundle (.cvb) to run.
@@ -63,6 +67,8 @@ pub enum CliError {
     #[error(transparent)]
     Npy(#[from] NpyError),
     #[error(transparent)]
+    Import(#[from] ImportError),
+    #[error(transparent)]
     Run(#[from] RunError),
     #[error(
         "input array has shape {found:?}; the model takes [batch, {}]",
@@ -80,6 +86,19 @@ pub enum CliError {
     Stdout(std::io::Error),
 }
 
+/// `1234567` as `1,234,567`.
+pub(crate) fn with_commas(n: u64) -> String {
+    let s = n.to_string();
+    let mut out = String::new();
+    for (i, c) in s.chars().enumerate() {
+        if i > 0 && (s.len() - i).is_multiple_of(3) {
+            out.push(',');
+        }
+        out.push(c);
+    }
+    out
+}
+
 fn fmt_dims(d: &[usize]) -> String {
     d.iter()
         .map(|x| x.to_string())
@@ -94,6 +113,7 @@ fn fmt_dims(d: &[usize]) -> String {
 pub fn dispatch(cli: Cli) -> Result<(), CliError> {
     match cli.command {
         Command::Inspect { bundle, json } => inspect::inspect(&bundle, json),
+        Command::Import(args) => import::import(&args),
         Command::Run {
             bundle,
             input,

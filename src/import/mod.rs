@@ -1,0 +1,377 @@
+//! Importing models that training frameworks export: ONNX file → verified bundle.
+//!
+//! [`import_onnx`] reads the file (and external data beside it), converts it
+//! ([`onnx::convert`]), builds a bundle, runs the converted model on check inputs — the
+//! caller's reference arrays, or generated ones — and only then writes the bundle, atomically.
+//! A failure at any step leaves no output file.
+
+pub mod error;
+pub mod onnx;
+
+use std::collections::BTreeMap;
+use std::path::{Path, PathBuf};
+
+pub use error::ImportError;
+
+use crate::bundle::manifest::{
+    ColorMode, FitRule, ImagePrep, InputSpec, OutputKind, OutputSpec, ResizeFilter,
+};
+use crate::bundle::{Bundle, BundleWriter, MAX_CHECK_SAMPLES};
+use crate::engine::{Engine, EngineConfig, RunOptions, tolerance_check};
+use crate::graph::build::SplitMix64;
+use crate::npy::NpyArray;
+
+/// Largest ONNX file accepted (protobuf messages cannot exceed 2 GiB).
+pub const MAX_ONNX_BYTES: u64 = 2 << 30;
+
+/// Check samples generated when the caller gives none.
+const GENERATED_CHECKS: usize = 4;
+
+/// What the caller decides about the bundle.
+#[derive(Clone, Debug, Default)]
+pub struct ImportOptions {
+    /// Model name; default: the file name without extension.
+    pub name: Option<String>,
+    /// Version; default `1`.
+    pub version: Option<String>,
+    pub description: String,
+    /// One label per output class; default: none (clients see class indices).
+    pub labels: Option<Vec<String>>,
+    /// How encoded images become the input; `None` for plain tensors.
+    pub image: Option<ImageOptions>,
+    /// Reference input and output arrays from the training framework.
+    pub check: Option<(NpyArray, NpyArray)>,
+    /// Where `check` came from, for the bundle's record.
+    pub check_source: String,
+}
+
+/// Image preparation as the caller states it; what is left out follows the model.
+#[derive(Clone, Debug, Default)]
+pub struct ImageOptions {
+    /// Default: gray for one channel, RGB for three.
+    pub color: Option<ColorMode>,
+    /// Width and height; default: the model's input size.
+    pub size: Option<(usize, usize)>,
+    /// Default: bilinear.
+    pub resize_filter: Option<ResizeFilter>,
+    /// Default: stretch.
+    pub fit: Option<FitRule>,
+    /// Default: 1/255 (pixels to 0..1).
+    pub scale: Option<f32>,
+    /// Default: 0 per channel.
+    pub mean: Option<Vec<f32>>,
+    /// Default: 1 per channel.
+    pub std: Option<Vec<f32>>,
+}
+
+impl ImageOptions {
+    /// The full preparation for a model whose input is `shape`.
+    ///
+    /// # Errors
+    /// A model input that is not `[C, H, W]` with 1 or 3 channels.
+    pub fn resolve(&self, shape: &[usize]) -> Result<ImagePrep, ImportError> {
+        let &[c, h, w] = shape else {
+            return Err(ImportError::Options {
+                what: "image input",
+                problem: format!("the model's input {shape:?} is not an image [C, H, W]"),
+            });
+        };
+        let color = match (self.color, c) {
+            (Some(color), _) => color,
+            (None, 1) => ColorMode::Gray,
+            (None, 3) => ColorMode::Rgb,
+            (None, _) => {
+                return Err(ImportError::Options {
+                    what: "image input",
+                    problem: format!("{c} channels: images have 1 (gray) or 3 (RGB)"),
+                });
+            }
+        };
+        let (width, height) = self.size.unwrap_or((w, h));
+        Ok(ImagePrep {
+            color,
+            width,
+            height,
+            resize_filter: self.resize_filter.unwrap_or(ResizeFilter::Bilinear),
+            fit: self.fit.unwrap_or(FitRule::Stretch),
+            scale: self.scale.unwrap_or(1.0 / 255.0),
+            mean: self.mean.clone().unwrap_or_else(|| vec![0.0; c]),
+            std: self.std.clone().unwrap_or_else(|| vec![1.0; c]),
+        })
+    }
+}
+
+/// What an import did.
+#[derive(Clone, Debug)]
+pub struct ImportReport {
+    pub output: PathBuf,
+    pub name: String,
+    pub version: String,
+    pub opset: i64,
+    pub producer: String,
+    pub input_shape: Vec<usize>,
+    pub output_shape: Vec<usize>,
+    pub output_kind: OutputKind,
+    pub source_ops: BTreeMap<String, usize>,
+    pub folded_nodes: usize,
+    /// Import rewrites and plan fusions, one line each.
+    pub notes: Vec<String>,
+    pub parameters: u64,
+    pub multiply_adds: u64,
+    pub check_samples: usize,
+    pub check_from_reference: bool,
+    pub max_abs_error: f32,
+    pub bound: f32,
+    pub file_bytes: usize,
+}
+
+/// Imports `model` and writes the bundle to `output`.
+///
+/// # Errors
+/// Unreadable or invalid files, unsupported content (naming node and op), options that
+/// disagree with the model, and reference outputs that the converted model does not
+/// reproduce. Nothing is written on error.
+pub fn import_onnx(
+    model: &Path,
+    output: &Path,
+    options: &ImportOptions,
+    progress: &mut dyn FnMut(&str),
+) -> Result<ImportReport, ImportError> {
+    let io = |source| ImportError::Io {
+        path: model.to_path_buf(),
+        source,
+    };
+    let bytes_len = std::fs::metadata(model).map_err(io)?.len();
+    if bytes_len > MAX_ONNX_BYTES {
+        return Err(ImportError::FileTooLarge {
+            path: model.to_path_buf(),
+            bytes: bytes_len,
+            limit: MAX_ONNX_BYTES,
+        });
+    }
+    progress(&format!(
+        "reading {} ({:.1} MB)",
+        model.display(),
+        bytes_len as f64 / 1e6
+    ));
+    let bytes = std::fs::read(model).map_err(io)?;
+    let proto = onnx::proto::decode_model(&bytes)?;
+    drop(bytes);
+    let dir = model.parent().map(|p| {
+        if p.as_os_str().is_empty() {
+            Path::new(".")
+        } else {
+            p
+        }
+    });
+    let external = onnx::tensor::ExternalData::new(dir);
+    progress("converting");
+    let converted = onnx::convert::convert(&proto, &external)?;
+
+    let name = match &options.name {
+        Some(n) => n.clone(),
+        None => default_name(model),
+    };
+    let version = options.version.clone().unwrap_or_else(|| "1".into());
+    let input_shape = converted.graph.input.shape.clone();
+    let image = options
+        .image
+        .as_ref()
+        .map(|i| i.resolve(&input_shape))
+        .transpose()?;
+    let mut writer = BundleWriter::new(
+        name.clone(),
+        version.clone(),
+        converted.graph.clone(),
+        InputSpec {
+            shape: input_shape.clone(),
+            image,
+        },
+        OutputSpec {
+            labels: options.labels.clone().unwrap_or_default(),
+            kind: if converted.ends_in_softmax {
+                OutputKind::Probabilities
+            } else {
+                OutputKind::Logits
+            },
+        },
+    )
+    .description(options.description.clone())
+    .source(format!(
+        "{} (ONNX opset {}{})",
+        model
+            .file_name()
+            .map(|f| f.to_string_lossy())
+            .unwrap_or_default(),
+        converted.opset,
+        if converted.producer.is_empty() {
+            String::new()
+        } else {
+            format!(", exported by {}", converted.producer)
+        }
+    ));
+    for (n, shape, data) in converted.tensors.iter().cloned() {
+        writer.add_tensor(n, &shape, data)?;
+    }
+
+    progress("verifying");
+    // A first build without check samples: the engine that computes them.
+    let plain = Bundle::from_bytes(writer.to_bytes()?)?;
+    let engine =
+        Engine::new(&plain, &EngineConfig::default()).map_err(|e| ImportError::Options {
+            what: "engine",
+            problem: e.to_string(),
+        })?;
+    let in_len: usize = input_shape.iter().product();
+    let out_shape = plain.output_shape().to_vec();
+    let out_len: usize = out_shape.iter().product();
+    let (inputs, expected, count, from_reference) = match &options.check {
+        Some((x, y)) => {
+            let n = check_shapes(x, y, &input_shape, &out_shape)?;
+            (x.data.clone(), Some(y.data.clone()), n, true)
+        }
+        None => {
+            let mut rng = SplitMix64::new(0xC0_4E_0F);
+            // Values of the size normalised inputs have; only the replay matters, not realism.
+            (
+                rng.vec(GENERATED_CHECKS * in_len, -2.0, 2.0),
+                None,
+                GENERATED_CHECKS,
+                false,
+            )
+        }
+    };
+    let mut got = Vec::with_capacity(count * out_len);
+    for chunk in inputs.chunks(in_len * 64) {
+        let n = chunk.len() / in_len;
+        got.extend(engine.run(chunk, n, RunOptions::default()).map_err(|e| {
+            ImportError::Options {
+                what: "check input",
+                problem: e.to_string(),
+            }
+        })?);
+    }
+    let (max_abs_error, bound) = match &expected {
+        Some(want) => {
+            let (err, bound) = tolerance_check(&got, want);
+            if err > bound {
+                return Err(ImportError::CheckMismatch {
+                    max_abs_error: err,
+                    bound,
+                });
+            }
+            (err, bound)
+        }
+        None => (0.0, 0.0),
+    };
+    let stored = count.min(MAX_CHECK_SAMPLES).min(16);
+    let produced_by = if from_reference {
+        options.check_source.clone()
+    } else {
+        format!("convoy {} on generated inputs", env!("CARGO_PKG_VERSION"))
+    };
+    writer.check_samples(
+        stored,
+        inputs[..stored * in_len].to_vec(),
+        match &expected {
+            Some(want) => want[..stored * out_len].to_vec(),
+            None => got[..stored * out_len].to_vec(),
+        },
+        &out_shape,
+        produced_by,
+    )?;
+    progress(&format!("writing {}", output.display()));
+    let bytes = writer.to_bytes()?;
+    let file_bytes = bytes.len();
+    let final_bundle = Bundle::from_bytes(bytes.clone())?;
+    crate::bundle::write_atomically(output, &bytes)?;
+
+    let summary = final_bundle.summary();
+    let mut notes = converted.notes.clone();
+    notes.extend(engine.plan().folded().iter().cloned());
+    Ok(ImportReport {
+        output: output.to_path_buf(),
+        name,
+        version,
+        opset: converted.opset,
+        producer: converted.producer,
+        input_shape,
+        output_shape: out_shape,
+        output_kind: final_bundle.manifest().output.kind,
+        source_ops: converted.source_ops,
+        folded_nodes: converted.folded_nodes,
+        notes,
+        parameters: summary.parameters,
+        multiply_adds: summary.multiply_adds,
+        check_samples: count,
+        check_from_reference: from_reference,
+        max_abs_error,
+        bound,
+        file_bytes,
+    })
+}
+
+/// The model name from a file name: its stem with characters outside the name rule replaced.
+fn default_name(model: &Path) -> String {
+    let stem = model
+        .file_stem()
+        .map(|s| s.to_string_lossy().into_owned())
+        .unwrap_or_default();
+    let cleaned: String = stem
+        .chars()
+        .map(|c| {
+            if c.is_ascii_alphanumeric() || matches!(c, '-' | '_' | '.') {
+                c
+            } else {
+                '-'
+            }
+        })
+        .collect();
+    let trimmed = cleaned.trim_start_matches('.');
+    if trimmed.is_empty() {
+        "model".into()
+    } else {
+        trimmed.chars().take(128).collect()
+    }
+}
+
+fn check_shapes(
+    x: &NpyArray,
+    y: &NpyArray,
+    input_shape: &[usize],
+    output_shape: &[usize],
+) -> Result<usize, ImportError> {
+    let bad = |problem: String| ImportError::Options {
+        what: "check arrays",
+        problem,
+    };
+    if x.shape.len() != input_shape.len() + 1 || x.shape[1..] != *input_shape {
+        return Err(bad(format!(
+            "input array has shape {:?}; the model takes [batch, {}]",
+            x.shape,
+            join(input_shape)
+        )));
+    }
+    let n = x.shape[0];
+    let out_elems: usize = output_shape.iter().product();
+    // Accept [n, ...output] or [n, flat] for the reference outputs.
+    let y_elems: usize = y.shape.iter().skip(1).product();
+    if y.shape.first() != Some(&n) || y_elems != out_elems {
+        return Err(bad(format!(
+            "output array has shape {:?}; expected [{n}, {}]",
+            y.shape,
+            join(output_shape)
+        )));
+    }
+    if n == 0 {
+        return Err(bad("the arrays hold no samples".into()));
+    }
+    Ok(n)
+}
+
+fn join(d: &[usize]) -> String {
+    d.iter()
+        .map(|x| x.to_string())
+        .collect::<Vec<_>>()
+        .join(", ")
+}

@@ -1,0 +1,637 @@
+//! The node walk: ONNX nodes in graph order become constants (folded now) or convoy graph
+//! nodes (computed per request).
+//!
+//! Every ONNX value is either a [`ConstTensor`] known at import time or a dynamic value with
+//! a batch dimension in front of its per-sample shape. Shape arithmetic on dynamic values
+//! (`Shape(x)` → `Gather` → `Concat` → `Reshape`, as exporters write `x.view(x.size(0), -1)`)
+//! is folded with the batch size replaced by [`BATCH`], a sentinel that must reach a
+//! `Reshape` target's first entry untouched; anything else that depends on the batch size is
+//! refused, because a bundle must compute the same for every batch.
+//!
+//! An op the executor cannot compute exactly as ONNX defines it is refused with the node's
+//! name; nothing is ever approximated.
+
+use std::collections::{BTreeMap, HashMap, HashSet};
+
+mod layers;
+mod reshape;
+
+use super::attr::{attr_float_checked, attr_int_checked, attr_string_checked};
+use super::fold::{can_fold, fold_node};
+use super::proto::onnx::{ModelProto, NodeProto, ValueInfoProto};
+use super::tensor::{ConstTensor, ExternalData};
+use crate::graph::build::NamedTensor;
+use crate::graph::{GeluApproximation, Graph, GraphInput, Node, Op};
+use crate::import::ImportError;
+
+/// Opsets of the default domain that the importer understands.
+pub const MIN_OPSET: i64 = 11;
+pub const MAX_OPSET: i64 = 21;
+
+/// Stands for the batch size in folded shape arithmetic. Odd and large so that it cannot be
+/// confused with a real dimension, and so that arithmetic on it (which would make the model
+/// batch-dependent) produces values that no check accepts.
+pub const BATCH: i64 = 0x3FFF_FFF1;
+
+/// The ONNX operators mapped to convoy ops (constant-foldable ones are listed by `fold`).
+pub const SUPPORTED: &[&str] = &[
+    "Conv",
+    "BatchNormalization",
+    "Gemm",
+    "MatMul",
+    "Add",
+    "Mul",
+    "Relu",
+    "Clip",
+    "LeakyRelu",
+    "Sigmoid",
+    "Tanh",
+    "HardSigmoid",
+    "HardSwish",
+    "Gelu",
+    "MaxPool",
+    "AveragePool",
+    "GlobalAveragePool",
+    "ReduceMean",
+    "Flatten",
+    "Reshape",
+    "Squeeze",
+    "Unsqueeze",
+    "Concat",
+    "Pad",
+    "Softmax",
+    "Dropout",
+    "Identity",
+    "Shape",
+    "Constant",
+];
+
+/// The converted model and what happened on the way.
+#[derive(Debug)]
+pub struct Converted {
+    pub graph: Graph,
+    pub tensors: Vec<NamedTensor>,
+    /// The graph ends in a softmax, so its output is probabilities.
+    pub ends_in_softmax: bool,
+    /// ONNX operator types in the source file, with counts.
+    pub source_ops: BTreeMap<String, usize>,
+    /// Nodes evaluated at import time (shape arithmetic, constants).
+    pub folded_nodes: usize,
+    /// One line per rewrite worth telling (MatMul + Add into a dense layer, ...).
+    pub notes: Vec<String>,
+    pub opset: i64,
+    pub producer: String,
+}
+
+/// A value during conversion.
+#[derive(Clone, Debug)]
+enum Val {
+    Const(ConstTensor),
+    /// A value computed per request: its name in our graph and its per-sample shape.
+    Dyn {
+        name: String,
+        shape: Vec<usize>,
+    },
+}
+
+/// Converts a decoded model.
+///
+/// # Errors
+/// Unsupported opsets, domains and operators; non-constant weights; shapes the executor
+/// cannot take; bad tensors or external data — each naming the node.
+pub fn convert(model: &ModelProto, external: &ExternalData) -> Result<Converted, ImportError> {
+    let opset = default_opset(model)?;
+    let graph = model.graph.as_ref().ok_or_else(|| ImportError::NotOnnx {
+        reason: "the model has no graph".into(),
+    })?;
+    let mut c = Converter {
+        opset,
+        vals: HashMap::new(),
+        nodes: Vec::new(),
+        tensors: Vec::new(),
+        tensor_names: HashSet::new(),
+        node_names: HashSet::new(),
+        uses: HashMap::new(),
+        dense_without_bias: HashMap::new(),
+        folded: 0,
+        notes: Vec::new(),
+        source_ops: BTreeMap::new(),
+    };
+    for t in &graph.initializer {
+        let ct = ConstTensor::from_proto(t, external)?;
+        c.vals.insert(t.name.clone(), Val::Const(ct));
+    }
+    let input = c.graph_input(&graph.input)?;
+    for n in &graph.node {
+        *c.source_ops.entry(n.op_type.clone()).or_default() += 1;
+        for i in &n.input {
+            *c.uses.entry(i.clone()).or_default() += 1;
+        }
+    }
+    for o in &graph.output {
+        *c.uses.entry(o.name.clone()).or_default() += 1;
+    }
+    for (index, n) in graph.node.iter().enumerate() {
+        c.node(n, index)?;
+    }
+    if graph.output.len() != 1 {
+        return Err(ImportError::Output {
+            problem: format!(
+                "the model has {} outputs; a classifier has exactly one",
+                graph.output.len()
+            ),
+        });
+    }
+    let out_name = &graph.output[0].name;
+    let output = match c.vals.get(out_name) {
+        Some(Val::Dyn { name, .. }) => name.clone(),
+        Some(Val::Const(_)) => {
+            return Err(ImportError::Output {
+                problem: format!("{out_name:?} does not depend on the input"),
+            });
+        }
+        None => {
+            return Err(ImportError::Output {
+                problem: format!("{out_name:?} is not produced by any node"),
+            });
+        }
+    };
+    if output == input {
+        return Err(ImportError::Output {
+            problem: "the output is the input itself".into(),
+        });
+    }
+    let ends_in_softmax = c
+        .nodes
+        .iter()
+        .rev()
+        .find(|n| n.output == output)
+        .is_some_and(|n| matches!(n.op, Op::Softmax));
+    let input_shape = match c.vals.get(&graph_input_name(&graph.input, &c)) {
+        Some(Val::Dyn { shape, .. }) => shape.clone(),
+        _ => Vec::new(),
+    };
+    Ok(Converted {
+        graph: Graph {
+            input: GraphInput {
+                name: input,
+                shape: input_shape,
+            },
+            output,
+            nodes: c.nodes,
+        },
+        tensors: c.tensors,
+        ends_in_softmax,
+        source_ops: c.source_ops,
+        folded_nodes: c.folded,
+        notes: c.notes,
+        opset,
+        producer: format!("{} {}", model.producer_name, model.producer_version)
+            .trim()
+            .to_string(),
+    })
+}
+
+fn default_opset(model: &ModelProto) -> Result<i64, ImportError> {
+    let version = model
+        .opset_import
+        .iter()
+        .find(|o| o.domain.is_empty() || o.domain == "ai.onnx")
+        .map(|o| o.version)
+        .ok_or_else(|| ImportError::NotOnnx {
+            reason: "no opset for the default domain".into(),
+        })?;
+    if !(MIN_OPSET..=MAX_OPSET).contains(&version) {
+        return Err(ImportError::Opset {
+            found: version,
+            min: MIN_OPSET,
+            max: MAX_OPSET,
+        });
+    }
+    Ok(version)
+}
+
+/// The name of the graph's one real (non-initializer) input.
+fn graph_input_name(inputs: &[ValueInfoProto], c: &Converter) -> String {
+    inputs
+        .iter()
+        .find(|i| matches!(c.vals.get(&i.name), Some(Val::Dyn { .. })))
+        .map(|i| i.name.clone())
+        .unwrap_or_default()
+}
+
+struct Converter {
+    opset: i64,
+    vals: HashMap<String, Val>,
+    nodes: Vec<Node>,
+    tensors: Vec<NamedTensor>,
+    tensor_names: HashSet<String>,
+    node_names: HashSet<String>,
+    /// How many nodes (and graph outputs) read each ONNX value.
+    uses: HashMap<String, usize>,
+    /// Dense nodes we made from MatMul, by output value, index into `nodes`: an `Add` of a
+    /// bias right after becomes the dense layer's bias.
+    dense_without_bias: HashMap<String, usize>,
+    folded: usize,
+    notes: Vec<String>,
+    source_ops: BTreeMap<String, usize>,
+}
+
+/// Shorthand for the context of a node's errors.
+struct Ctx<'a> {
+    node: &'a str,
+    op: &'a str,
+}
+
+impl Ctx<'_> {
+    fn unsupported(&self, problem: impl Into<String>) -> ImportError {
+        ImportError::Unsupported {
+            node: self.node.to_string(),
+            op: self.op.to_string(),
+            problem: problem.into(),
+        }
+    }
+    fn not_constant(&self, index: usize) -> ImportError {
+        ImportError::NotConstant {
+            node: self.node.to_string(),
+            op: self.op.to_string(),
+            index,
+        }
+    }
+}
+
+impl Converter {
+    fn graph_input(&mut self, inputs: &[ValueInfoProto]) -> Result<String, ImportError> {
+        let real: Vec<&ValueInfoProto> = inputs
+            .iter()
+            .filter(|i| !self.vals.contains_key(&i.name))
+            .collect();
+        let [input] = real[..] else {
+            return Err(ImportError::Input {
+                problem: format!(
+                    "the model has {} inputs besides its weights; a classifier takes exactly one",
+                    real.len()
+                ),
+            });
+        };
+        let dims =
+            super::proto::tensor_input_dims(input).map_err(|problem| ImportError::Input {
+                problem: format!("{:?}: {problem}", input.name),
+            })?;
+        if dims.len() != 2 && dims.len() != 4 {
+            return Err(ImportError::Input {
+                problem: format!(
+                    "{:?} has rank {}; supported are [batch, features] and [batch, C, H, W]",
+                    input.name,
+                    dims.len()
+                ),
+            });
+        }
+        // The first dimension is the batch: symbolic, or a fixed 1 from an exporter that was
+        // not told about dynamic batches.
+        match dims[0] {
+            None | Some(1) => {}
+            Some(n) => {
+                return Err(ImportError::Input {
+                    problem: format!(
+                        "{:?} has a fixed batch of {n}; export with a dynamic (or unit) batch dimension",
+                        input.name
+                    ),
+                });
+            }
+        }
+        let mut shape = Vec::new();
+        for (axis, d) in dims.iter().enumerate().skip(1) {
+            match d {
+                Some(n) if *n > 0 => shape.push(*n as usize),
+                _ => {
+                    return Err(ImportError::Input {
+                        problem: format!(
+                            "{:?}: dimension {axis} must be a fixed positive size, got {d:?}",
+                            input.name
+                        ),
+                    });
+                }
+            }
+        }
+        self.vals.insert(
+            input.name.clone(),
+            Val::Dyn {
+                name: input.name.clone(),
+                shape,
+            },
+        );
+        Ok(input.name.clone())
+    }
+
+    fn unique_node_name(&mut self, n: &NodeProto, index: usize) -> String {
+        let base = if n.name.is_empty() {
+            format!("{}_{index}", n.op_type)
+        } else {
+            n.name.clone()
+        };
+        let mut name = base.clone();
+        let mut k = 1;
+        while !self.node_names.insert(name.clone()) {
+            name = format!("{base}_{k}");
+            k += 1;
+        }
+        name
+    }
+
+    fn add_tensor(&mut self, wanted: &str, t: ConstTensor) -> String {
+        let mut name = wanted.to_string();
+        let mut k = 1;
+        while !self.tensor_names.insert(name.clone()) {
+            name = format!("{wanted}_{k}");
+            k += 1;
+        }
+        let shape = t.shape.clone();
+        self.tensors.push((name.clone(), shape, t.to_f32()));
+        name
+    }
+
+    fn node(&mut self, n: &NodeProto, index: usize) -> Result<(), ImportError> {
+        let name = self.unique_node_name(n, index);
+        let ctx = Ctx {
+            node: &name,
+            op: &n.op_type,
+        };
+        if !(n.domain.is_empty() || n.domain == "ai.onnx") {
+            return Err(ImportError::Domain {
+                node: name.clone(),
+                op: n.op_type.clone(),
+                domain: n.domain.clone(),
+            });
+        }
+        let mut inputs: Vec<Option<Val>> = Vec::with_capacity(n.input.len());
+        for v in &n.input {
+            if v.is_empty() {
+                inputs.push(None);
+                continue;
+            }
+            let val = self.vals.get(v).ok_or_else(|| ImportError::MissingValue {
+                node: name.clone(),
+                op: n.op_type.clone(),
+                value: v.clone(),
+            })?;
+            inputs.push(Some(val.clone()));
+        }
+        let all_const = inputs.iter().all(|i| !matches!(i, Some(Val::Dyn { .. })));
+        if n.op_type == "Shape"
+            && let Some(Some(Val::Dyn { shape, .. })) = inputs.first()
+        {
+            let full = self.shape_of_dynamic(n, shape)?;
+            self.folded += 1;
+            self.set(&n.output[0], Val::Const(full));
+            return Ok(());
+        }
+        if all_const {
+            if !can_fold(&n.op_type) {
+                return Err(ctx.unsupported(
+                    "all inputs are constant, but this operator cannot be evaluated at import time",
+                ));
+            }
+            let consts: Vec<Option<&ConstTensor>> = inputs
+                .iter()
+                .map(|i| match i {
+                    Some(Val::Const(t)) => Some(t),
+                    _ => None,
+                })
+                .collect();
+            let outs = fold_node(n, self.opset, &consts)?;
+            for (o, t) in n.output.iter().zip(outs) {
+                if !o.is_empty() {
+                    self.set(o, Val::Const(t));
+                }
+            }
+            self.folded += 1;
+            return Ok(());
+        }
+        self.dynamic(n, &name, &inputs)
+    }
+
+    fn set(&mut self, onnx_name: &str, v: Val) {
+        self.vals.insert(onnx_name.to_string(), v);
+    }
+
+    /// `Shape` of a dynamic value: its full shape with the batch as [`BATCH`], sliced by the
+    /// `start`/`end` attributes (opset 15).
+    fn shape_of_dynamic(&self, n: &NodeProto, shape: &[usize]) -> Result<ConstTensor, ImportError> {
+        let mut full: Vec<i64> = vec![BATCH];
+        full.extend(shape.iter().map(|&d| d as i64));
+        let rank = full.len() as i64;
+        let clamp = |v: i64| -> usize {
+            let v = if v < 0 { v + rank } else { v };
+            v.clamp(0, rank) as usize
+        };
+        let start = attr_int_checked(n, "start")?.map_or(0, clamp);
+        let end = attr_int_checked(n, "end")?.map_or(full.len(), clamp);
+        let part: Vec<i64> = if start < end {
+            full[start..end].to_vec()
+        } else {
+            Vec::new()
+        };
+        Ok(ConstTensor::i64(vec![part.len()], part))
+    }
+
+    fn push(&mut self, name: &str, op: Op, inputs: &[&str], output: &str, shape: Vec<usize>) {
+        self.nodes.push(Node {
+            name: name.to_string(),
+            inputs: inputs.iter().map(|s| s.to_string()).collect(),
+            output: output.to_string(),
+            op,
+        });
+        self.set(
+            output,
+            Val::Dyn {
+                name: output.to_string(),
+                shape,
+            },
+        );
+    }
+
+    fn dynamic(
+        &mut self,
+        n: &NodeProto,
+        name: &str,
+        inputs: &[Option<Val>],
+    ) -> Result<(), ImportError> {
+        let ctx = Ctx {
+            node: name,
+            op: &n.op_type,
+        };
+        let out = n.output.first().cloned().unwrap_or_default();
+        if out.is_empty() {
+            return Err(ctx.unsupported("the node has no output"));
+        }
+        // The first input is the dynamic one for every op below except binary ops and Concat.
+        let x =
+            || -> Result<(String, Vec<usize>), ImportError> {
+                match inputs.first() {
+                    Some(Some(Val::Dyn { name, shape })) => Ok((name.clone(), shape.clone())),
+                    _ => Err(ctx
+                        .unsupported("its first input must be the computed value, not a constant")),
+                }
+            };
+        let konst = |i: usize| -> Result<Option<&ConstTensor>, ImportError> {
+            match inputs.get(i) {
+                None | Some(None) => Ok(None),
+                Some(Some(Val::Const(t))) => Ok(Some(t)),
+                Some(Some(Val::Dyn { .. })) => Err(ctx.not_constant(i)),
+            }
+        };
+        // Extra outputs (BatchNormalization's running stats, Dropout's mask, MaxPool's indices)
+        // must not be read by anyone.
+        for extra in n.output.iter().skip(1) {
+            if !extra.is_empty() && self.uses.get(extra).copied().unwrap_or(0) > 0 {
+                return Err(ctx.unsupported(format!(
+                    "its output {extra:?} is used; only the first output is supported"
+                )));
+            }
+        }
+        let unary = |op: Op| -> Result<(Op, Vec<usize>, String), ImportError> {
+            let (xn, shape) = x()?;
+            Ok((op, shape, xn))
+        };
+        let (op, shape, input) = match n.op_type.as_str() {
+            "Relu" => unary(Op::Relu)?,
+            "Sigmoid" => unary(Op::Sigmoid)?,
+            "Tanh" => unary(Op::Tanh)?,
+            "HardSwish" => unary(Op::HardSwish)?,
+            "Identity" => unary(Op::Identity)?,
+            "LeakyRelu" => unary(Op::LeakyRelu {
+                slope: attr_float_checked(n, "alpha")?.unwrap_or(0.01),
+            })?,
+            "HardSigmoid" => unary(Op::HardSigmoid {
+                alpha: attr_float_checked(n, "alpha")?.unwrap_or(0.2),
+                beta: attr_float_checked(n, "beta")?.unwrap_or(0.5),
+            })?,
+            "Gelu" => {
+                let approximation = match attr_string_checked(n, "approximate")?.as_deref() {
+                    None | Some("none") => GeluApproximation::None,
+                    Some("tanh") => GeluApproximation::Tanh,
+                    Some(other) => {
+                        return Err(ctx.unsupported(format!("approximate = {other:?}")));
+                    }
+                };
+                unary(Op::Gelu { approximation })?
+            }
+            "Dropout" => {
+                // Inference: identity. A constant training_mode input must be false.
+                if let Some(t) = konst(2)?
+                    && t.to_i64().iter().any(|&v| v != 0)
+                {
+                    return Err(ctx.unsupported("training_mode is true"));
+                }
+                unary(Op::Identity)?
+            }
+            "Clip" => {
+                // Opset 11+: min and max are optional constant inputs. A missing bound is
+                // ±f32::MAX rather than infinity, which JSON cannot hold; the two differ only
+                // for infinite inputs.
+                let bound = |i: usize, default: f32| -> Result<f32, ImportError> {
+                    Ok(match konst(i)? {
+                        Some(t) if t.len() == 1 => t.to_f32()[0],
+                        Some(_) => return Err(ctx.unsupported("min/max must be scalars")),
+                        None => default,
+                    })
+                };
+                let min = bound(1, attr_float_checked(n, "min")?.unwrap_or(-f32::MAX))?;
+                let max = bound(2, attr_float_checked(n, "max")?.unwrap_or(f32::MAX))?;
+                if min.is_nan() || max.is_nan() || min > max {
+                    return Err(ctx.unsupported(format!("min {min} > max {max}")));
+                }
+                unary(Op::Clip { min, max })?
+            }
+            "Conv" => self.conv(n, name, &ctx, inputs)?,
+            "BatchNormalization" => self.batch_norm(n, name, &ctx, inputs)?,
+            "Gemm" => self.gemm(n, name, &ctx, inputs)?,
+            "MatMul" => self.matmul(name, &ctx, inputs, &out)?,
+            "Add" | "Mul" => {
+                if let Some(done) = self.binary(n, name, &ctx, inputs, &out)? {
+                    done
+                } else {
+                    return Ok(());
+                }
+            }
+            "MaxPool" | "AveragePool" => self.pool(n, &ctx, inputs)?,
+            "GlobalAveragePool" => {
+                let (xn, s) = x()?;
+                if s.len() != 3 {
+                    return Err(ctx.unsupported(format!("input {s:?} is not [N, C, H, W]")));
+                }
+                (Op::GlobalAvgPool, vec![s[0], 1, 1], xn)
+            }
+            "ReduceMean" => return self.reduce_mean(n, name, &ctx, inputs, &out),
+            "Flatten" => {
+                let (xn, s) = x()?;
+                let axis = attr_int_checked(n, "axis")?.unwrap_or(1);
+                if axis != 1 && axis != -(s.len() as i64 + 1) + 1 {
+                    return Err(ctx.unsupported(format!(
+                        "axis {axis}: only flattening everything but the batch (axis 1) is supported"
+                    )));
+                }
+                (Op::Flatten, vec![s.iter().product()], xn)
+            }
+            "Reshape" => self.reshape(n, &ctx, inputs)?,
+            "Squeeze" | "Unsqueeze" => self.squeeze(n, &ctx, inputs)?,
+            "Concat" => {
+                let axis = attr_int_checked(n, "axis")?.unwrap_or(1);
+                let mut names = Vec::new();
+                let mut shapes = Vec::new();
+                for (i, v) in inputs.iter().enumerate() {
+                    match v {
+                        Some(Val::Dyn { name, shape }) => {
+                            names.push(name.clone());
+                            shapes.push(shape.clone());
+                        }
+                        _ => {
+                            return Err(ctx.unsupported(format!(
+                                "input {i} is a constant; only computed values can be joined"
+                            )));
+                        }
+                    }
+                }
+                let rank = shapes[0].len() as i64 + 1;
+                if axis != 1 && axis != 1 - rank {
+                    return Err(ctx.unsupported(format!(
+                        "axis {axis}: only joining along channels (axis 1) is supported"
+                    )));
+                }
+                let mut shape = shapes[0].clone();
+                shape[0] = shapes.iter().map(|s| s[0]).sum();
+                let refs: Vec<&str> = names.iter().map(String::as_str).collect();
+                self.push(name, Op::Concat, &refs, &out, shape);
+                return Ok(());
+            }
+            "Pad" => self.pad(n, &ctx, inputs)?,
+            "Softmax" => {
+                let (xn, s) = x()?;
+                let rank = s.len() as i64 + 1;
+                let default = if self.opset >= 13 { -1 } else { 1 };
+                let axis = attr_int_checked(n, "axis")?.unwrap_or(default);
+                let axis = if axis < 0 { axis + rank } else { axis };
+                // Before opset 13, Softmax flattens from `axis` on: the same as ours only when
+                // axis 1 is the last axis or the rest is 1×1.
+                let ok =
+                    axis == 1 && (rank == 2 || self.opset >= 13 || s[1..].iter().all(|&d| d == 1));
+                if !ok {
+                    return Err(ctx.unsupported(format!(
+                        "softmax over axis {axis} of a rank-{rank} value; supported: over classes [N, K] or channels [N, C, H, W]"
+                    )));
+                }
+                (Op::Softmax, s, xn)
+            }
+            other => {
+                return Err(ImportError::UnsupportedOp {
+                    node: name.to_string(),
+                    op: other.to_string(),
+                    supported: SUPPORTED.join(", "),
+                });
+            }
+        };
+        self.push(name, op, &[&input], &out, shape);
+        Ok(())
+    }
+}
