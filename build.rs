@@ -4,10 +4,9 @@
 //! compiler written in Rust, parses the `.proto` files into a `FileDescriptorSet`, and
 //! `prost-build` turns that set into Rust source in `OUT_DIR`, which the crate `include!`s.
 //!
-//! Each schema is one step in `main`. To add another (for example the gRPC service's own
-//! `proto/convoy/v1/*.proto` through `tonic-prost-build`), compile its files with
-//! `protox::compile` the same way and hand the descriptor set to that generator's
-//! `compile_fds`, next to the ONNX step below.
+//! Each schema is one step in `main`: the ONNX messages (prost-build) and convoy's own gRPC
+//! service (tonic-prost-build, which adds the client and server code). The service's encoded
+//! descriptor set is also written to `OUT_DIR` for gRPC server reflection.
 
 use std::error::Error;
 
@@ -33,9 +32,28 @@ const ONNX_PROTO: &str = "onnx/onnx.proto3";
 fn main() -> Result<(), Box<dyn Error>> {
     // protox reports no file it read to cargo, so say it here: rebuild when a schema changes.
     println!("cargo:rerun-if-changed={PROTO_ROOT}/{ONNX_PROTO}");
+    println!("cargo:rerun-if-changed={PROTO_ROOT}/{SERVICE_PROTO}");
     println!("cargo:rerun-if-changed=build.rs");
 
     compile_onnx()?;
+    compile_service()?;
+    Ok(())
+}
+
+/// convoy's gRPC contract (package `convoy.v1`, so `$OUT_DIR/convoy.v1.rs`).
+const SERVICE_PROTO: &str = "convoy/v1/predictor.proto";
+
+/// Generates the service's messages, client and server (`convoy.v1.rs`) and its encoded
+/// descriptor set (`convoy_v1_descriptor.bin`) for reflection.
+fn compile_service() -> Result<(), Box<dyn Error>> {
+    use prost::Message;
+    let fds = protox::compile([SERVICE_PROTO], [PROTO_ROOT])?;
+    let out = std::path::PathBuf::from(std::env::var("OUT_DIR")?);
+    std::fs::write(out.join("convoy_v1_descriptor.bin"), fds.encode_to_vec())?;
+    tonic_prost_build::configure()
+        .build_client(true)
+        .build_server(true)
+        .compile_fds(fds)?;
     Ok(())
 }
 

@@ -13,3 +13,7 @@ pub mod engine;
 pub mod graph;
 pub mod import;
 pub mod npy;
+pub mod prepare;
+pub mod registry;
+pub mod scheduler;
+pub mod service;

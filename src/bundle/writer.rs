@@ -74,6 +74,30 @@ impl BundleWriter {
         self
     }
 
+    /// Changes the model name.
+    pub fn name(mut self, name: impl Into<String>) -> Self {
+        self.name = name.into();
+        self
+    }
+
+    /// Changes the version.
+    pub fn version(mut self, version: impl Into<String>) -> Self {
+        self.version = version.into();
+        self
+    }
+
+    /// Declares how encoded images become the input (or that none are accepted).
+    pub fn image_input(mut self, prep: Option<crate::bundle::manifest::ImagePrep>) -> Self {
+        self.input.image = prep;
+        self
+    }
+
+    /// Sets the class labels.
+    pub fn labels(mut self, labels: Vec<String>) -> Self {
+        self.output.labels = labels;
+        self
+    }
+
     pub fn drift_baseline(mut self, baseline: serde_json::Value) -> Self {
         self.drift_baseline = Some(baseline);
         self

@@ -5,7 +5,9 @@
 
 mod import;
 mod inspect;
+mod predict;
 mod run;
+mod serve;
 
 use std::path::PathBuf;
 
@@ -36,6 +38,10 @@ pub enum Command {
         #[arg(long)]
         json: bool,
     },
+    /// Serve models over gRPC (predict, health, reflection).
+    Serve(serve::ServeArgs),
+    /// Ask a running server to classify images or .npy tensors.
+    Predict(predict::PredictArgs),
     /// Convert an ONNX model exported by a training framework into a bundle.
     Import(Box<import::ImportArgs>),
     /// Run a batch from a NumPy file through a bundle and write the raw graph output.
@@ -84,6 +90,25 @@ pub enum CliError {
     CheckFailed { max_abs_error: f32, bound: f32 },
     #[error("writing to standard output: {0}")]
     Stdout(std::io::Error),
+    #[error(transparent)]
+    Config(#[from] crate::service::ConfigError),
+    #[error(transparent)]
+    Start(#[from] crate::service::StartError),
+    #[error("async runtime: {0}")]
+    Runtime(std::io::Error),
+    #[error("server: {0}")]
+    Serve(String),
+    #[error("cannot reach {server}: {reason}")]
+    Connect { server: String, reason: String },
+    #[error("the server answered {code}: {message}")]
+    Rpc { code: String, message: String },
+    #[error("{path}: {source}")]
+    File {
+        path: std::path::PathBuf,
+        source: std::io::Error,
+    },
+    #[error("{0}")]
+    Usage(String),
 }
 
 /// `1234567` as `1,234,567`.
@@ -114,6 +139,8 @@ pub fn dispatch(cli: Cli) -> Result<(), CliError> {
     match cli.command {
         Command::Inspect { bundle, json } => inspect::inspect(&bundle, json),
         Command::Import(args) => import::import(&args),
+        Command::Serve(args) => serve::serve(&args),
+        Command::Predict(args) => predict::predict(&args),
         Command::Run {
             bundle,
             input,

@@ -7,6 +7,9 @@ use crate::bundle::Bundle;
 use crate::engine::{Engine, EngineConfig, RunOptions};
 use crate::npy::{read_npy_file, write_npy_file};
 
+/// Samples computed at a time by `convoy run`.
+const RUN_SLICE: usize = 256;
+
 pub fn run(
     bundle: &Path,
     input: &Path,
@@ -31,7 +34,14 @@ pub fn run(
         });
     }
     let batch = array.shape[0];
-    let result = engine.run(&array.data, batch, RunOptions { reject_non_finite })?;
+    let in_len = engine.plan().input_len();
+    // Large files run in slices, so memory stays bounded by the engine's batch limit; results
+    // do not depend on the slicing (batch invariance).
+    let mut result = Vec::with_capacity(batch * engine.plan().output_len());
+    for chunk in array.data.chunks(in_len.max(1) * RUN_SLICE) {
+        let n = chunk.len() / in_len.max(1);
+        result.extend(engine.run(chunk, n, RunOptions { reject_non_finite })?);
+    }
     let mut shape = vec![batch];
     shape.extend_from_slice(engine.plan().output_shape());
     write_npy_file(output, &shape, &result)?;

@@ -1,0 +1,9 @@
+//! The generated gRPC types of `proto/convoy/v1/predictor.proto` (package `convoy.v1`).
+
+#![allow(clippy::all, clippy::pedantic, missing_docs)]
+
+tonic::include_proto!("convoy.v1");
+
+/// The encoded descriptor set of the service, for gRPC server reflection.
+pub const FILE_DESCRIPTOR_SET: &[u8] =
+    include_bytes!(concat!(env!("OUT_DIR"), "/convoy_v1_descriptor.bin"));

@@ -1,0 +1,325 @@
+//! The `Predictor` gRPC service: resolve the model, prepare samples, compute, rank.
+
+use std::pin::Pin;
+use std::sync::Arc;
+use std::time::Instant;
+
+use tokio::sync::{Semaphore, mpsc};
+use tokio_stream::wrappers::ReceiverStream;
+use tokio_stream::{Stream, StreamExt};
+use tonic::{Request, Response, Status, Streaming};
+
+use super::api::{self, predictor_server::Predictor, sample::Data};
+use super::error::ServiceError;
+use crate::bundle::manifest::OutputKind;
+use crate::prepare::{ImageLimits, PrepareError, prepare_image, prepare_tensor};
+use crate::registry::{ModelVersion, Registry, VersionState};
+use crate::scheduler::Scheduler;
+
+/// Request limits, each with a safe default.
+#[derive(Clone, Debug)]
+pub struct RequestLimits {
+    pub max_samples_per_request: usize,
+    pub image: ImageLimits,
+    /// Requests of one `PredictStream` computed at the same time.
+    pub stream_concurrency: usize,
+}
+
+impl Default for RequestLimits {
+    fn default() -> Self {
+        RequestLimits {
+            max_samples_per_request: 64,
+            image: ImageLimits::default(),
+            stream_concurrency: 16,
+        }
+    }
+}
+
+/// State shared by every call.
+pub(crate) struct Shared {
+    pub registry: Arc<Registry>,
+    pub scheduler: Scheduler,
+    pub limits: RequestLimits,
+}
+
+/// The service object handed to tonic.
+#[derive(Clone)]
+pub struct PredictorService {
+    shared: Arc<Shared>,
+}
+
+impl PredictorService {
+    pub(crate) fn new(shared: Arc<Shared>) -> Self {
+        PredictorService { shared }
+    }
+}
+
+impl Shared {
+    async fn predict(
+        &self,
+        mut req: api::PredictRequest,
+        received: Instant,
+    ) -> Result<api::PredictReply, ServiceError> {
+        let model = self.registry.resolve(&req.model, &req.version)?;
+        let count = req.samples.len();
+        if count == 0 {
+            return Err(ServiceError::NoSamples);
+        }
+        if count > self.limits.max_samples_per_request {
+            return Err(ServiceError::TooManySamples {
+                count,
+                limit: self.limits.max_samples_per_request,
+            });
+        }
+        let samples = std::mem::take(&mut req.samples);
+        let prep_model = Arc::clone(&model);
+        let limits = self.limits.image;
+        // Decoding and resizing images is CPU work: keep it off the async I/O threads.
+        let inputs =
+            tokio::task::spawn_blocking(move || prepare_all(&prep_model, &samples, &limits))
+                .await
+                .map_err(|e| ServiceError::Internal(format!("preparation task failed: {e}")))??;
+        let pending = self.scheduler.submit(Arc::clone(&model), inputs, count)?;
+        let computed = pending
+            .await
+            .map_err(|_| ServiceError::Internal("the compute thread dropped the job".into()))??;
+        let classes = model.output_len();
+        let top_k = match req.top_k {
+            0 => 5,
+            k => k as usize,
+        }
+        .min(classes);
+        let outcomes = computed
+            .outputs
+            .chunks(classes)
+            .map(|raw| outcome(&model, raw, top_k, req.all_scores))
+            .collect();
+        Ok(api::PredictReply {
+            model: model.name.clone(),
+            version: model.version.clone(),
+            outcomes,
+            timing: Some(api::Timing {
+                queued_us: computed.queued.as_micros() as u64,
+                compute_us: computed.compute.as_micros() as u64,
+                batch_size: computed.batch_size as u32,
+                total_us: received.elapsed().as_micros() as u64,
+            }),
+            tag: req.tag,
+            problem: None,
+        })
+    }
+
+    fn catalog(&self) -> api::CatalogReply {
+        let models = self
+            .registry
+            .snapshot()
+            .into_iter()
+            .map(|(name, slot)| {
+                let active = slot.active().map(|m| m.version.clone()).unwrap_or_default();
+                let versions = slot
+                    .versions
+                    .iter()
+                    .map(|v| {
+                        let (state, reason) = match &v.state {
+                            VersionState::Loaded if v.version == active => {
+                                ("active", String::new())
+                            }
+                            VersionState::Loaded => ("loaded", String::new()),
+                            VersionState::Refused { reason } => ("refused", reason.clone()),
+                        };
+                        let mut e = api::VersionEntry {
+                            version: v.version.clone(),
+                            state: state.into(),
+                            reason,
+                            ..Default::default()
+                        };
+                        if let Some(m) = &v.model {
+                            fill_version(&mut e, m);
+                        }
+                        e
+                    })
+                    .collect();
+                api::ModelEntry {
+                    name,
+                    active_version: active,
+                    versions,
+                }
+            })
+            .collect();
+        api::CatalogReply {
+            models,
+            default_model: self.registry.default_model().unwrap_or_default(),
+        }
+    }
+}
+
+fn spelled<T: serde::Serialize>(v: &T) -> String {
+    serde_json::to_value(v)
+        .ok()
+        .and_then(|j| j.as_str().map(str::to_string))
+        .unwrap_or_default()
+}
+
+fn fill_version(e: &mut api::VersionEntry, m: &ModelVersion) {
+    let spec = &m.manifest.input;
+    e.description = m.manifest.description.clone();
+    e.input_shape = spec.shape.iter().map(|&d| d as u32).collect();
+    e.image = spec.image.as_ref().map(|i| api::ImageInput {
+        color: spelled(&i.color),
+        width: i.width as u32,
+        height: i.height as u32,
+        resize_filter: spelled(&i.resize_filter),
+        fit: spelled(&i.fit),
+        scale: i.scale,
+        mean: i.mean.clone(),
+        std: i.std.clone(),
+    });
+    e.labels = m.labels.clone();
+    e.output_kind = spelled(&m.output_kind);
+    e.parameters = m.parameters;
+    e.multiply_adds = m.multiply_adds;
+    e.bundle_sha256 = m.bundle_sha256.clone();
+    e.created = m.manifest.created.clone();
+}
+
+/// Turns every sample into model input, back to back.
+fn prepare_all(
+    model: &ModelVersion,
+    samples: &[api::Sample],
+    limits: &ImageLimits,
+) -> Result<Vec<f32>, ServiceError> {
+    let in_len = model.input_len();
+    let shape = &model.manifest.input.shape;
+    let mut inputs = vec![0.0f32; samples.len() * in_len];
+    for (index, (sample, out)) in samples.iter().zip(inputs.chunks_mut(in_len)).enumerate() {
+        let result = match &sample.data {
+            Some(Data::EncodedImage(bytes)) => match &model.manifest.input.image {
+                Some(prep) => prepare_image(bytes, prep, limits, out).map(|_| ()),
+                None => Err(PrepareError::ImageNotAccepted),
+            },
+            Some(Data::Tensor(t)) => prepare_tensor(&t.shape, &t.f32_le, shape, out),
+            None => return Err(ServiceError::EmptySample { index }),
+        };
+        result.map_err(|source| ServiceError::Sample { index, source })?;
+    }
+    Ok(inputs)
+}
+
+/// Probabilities (softmax of logits, or the graph's own probabilities), ranked.
+fn outcome(model: &ModelVersion, raw: &[f32], top_k: usize, all_scores: bool) -> api::Outcome {
+    let probs: Vec<f32> = match model.output_kind {
+        OutputKind::Probabilities => raw.to_vec(),
+        OutputKind::Logits => softmax(raw),
+    };
+    let mut order: Vec<usize> = (0..probs.len()).collect();
+    // Highest first; ties keep class order. NaN (which only a NaN input can produce) sorts last.
+    order.sort_by(|&a, &b| {
+        probs[b]
+            .partial_cmp(&probs[a])
+            .unwrap_or_else(|| probs[a].is_nan().cmp(&probs[b].is_nan()))
+    });
+    api::Outcome {
+        top: order
+            .iter()
+            .take(top_k)
+            .map(|&i| api::Ranked {
+                class_index: i as u32,
+                label: model.labels.get(i).cloned().unwrap_or_default(),
+                probability: probs[i],
+            })
+            .collect(),
+        scores: if all_scores { probs } else { Vec::new() },
+    }
+}
+
+/// Numerically stable softmax (subtract the maximum first).
+fn softmax(x: &[f32]) -> Vec<f32> {
+    let max = x.iter().copied().fold(f32::NEG_INFINITY, f32::max);
+    let exps: Vec<f32> = x.iter().map(|v| (v - max).exp()).collect();
+    let sum: f32 = exps.iter().sum();
+    exps.iter().map(|e| e / sum).collect()
+}
+
+type ReplyStream = Pin<Box<dyn Stream<Item = Result<api::PredictReply, Status>> + Send>>;
+
+#[tonic::async_trait]
+impl Predictor for PredictorService {
+    async fn predict(
+        &self,
+        request: Request<api::PredictRequest>,
+    ) -> Result<Response<api::PredictReply>, Status> {
+        let received = Instant::now();
+        let reply = self
+            .shared
+            .predict(request.into_inner(), received)
+            .await
+            .inspect_err(|e| tracing::debug!(error = %e, "predict refused"))?;
+        Ok(Response::new(reply))
+    }
+
+    type PredictStreamStream = ReplyStream;
+
+    async fn predict_stream(
+        &self,
+        request: Request<Streaming<api::PredictRequest>>,
+    ) -> Result<Response<Self::PredictStreamStream>, Status> {
+        let mut incoming = request.into_inner();
+        let concurrency = self.shared.limits.stream_concurrency.max(1);
+        // Bounded both ways: at most `concurrency` requests in flight, and as many replies
+        // buffered; a slow reader slows its own stream only.
+        let (tx, rx) = mpsc::channel(concurrency);
+        let shared = Arc::clone(&self.shared);
+        tokio::spawn(async move {
+            let permits = Arc::new(Semaphore::new(concurrency));
+            while let Some(item) = incoming.next().await {
+                let req = match item {
+                    Ok(r) => r,
+                    Err(status) => {
+                        let _ = tx.send(Err(status)).await;
+                        break;
+                    }
+                };
+                let Ok(permit) = Arc::clone(&permits).acquire_owned().await else {
+                    break;
+                };
+                let (shared, tx) = (Arc::clone(&shared), tx.clone());
+                tokio::spawn(async move {
+                    let tag = req.tag.clone();
+                    let reply = match shared.predict(req, Instant::now()).await {
+                        Ok(r) => r,
+                        Err(e) => api::PredictReply {
+                            tag,
+                            problem: Some(api::Problem {
+                                code: e.code() as i32,
+                                message: e.to_string(),
+                            }),
+                            ..Default::default()
+                        },
+                    };
+                    let _ = tx.send(Ok(reply)).await;
+                    drop(permit);
+                });
+            }
+        });
+        Ok(Response::new(Box::pin(ReceiverStream::new(rx))))
+    }
+
+    async fn catalog(
+        &self,
+        _request: Request<api::CatalogRequest>,
+    ) -> Result<Response<api::CatalogReply>, Status> {
+        Ok(Response::new(self.shared.catalog()))
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::softmax;
+
+    #[test]
+    fn softmax_of_equal_logits_is_uniform() {
+        // Closed form: softmax of k equal values is 1/k each.
+        let p = softmax(&[3.0, 3.0, 3.0, 3.0]);
+        assert!(p.iter().all(|&v| (v - 0.25).abs() < 1e-7));
+    }
+}
