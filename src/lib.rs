@@ -4,6 +4,12 @@
 //! - [`bundle`]: the `.cvb` weight bundle — writer, and a reader that verifies everything;
 //! - [`graph`]: the model graph stored in a bundle, its shape checks and cost counts;
 //! - [`engine`]: plans a bundle for this CPU and runs batches through it;
+//! - [`import`]: ONNX files from training frameworks → bundles;
+//! - [`registry`]: the loaded model versions a server answers with;
+//! - [`prepare`]: request samples (encoded images, tensors) → model input;
+//! - [`scheduler`]: batching and the compute threads;
+//! - [`service`]: the gRPC server; [`telemetry`] beside it: Prometheus metrics;
+//! - [`loadgen`]: `convoy bench`, load against a server or the engine alone;
 //! - [`npy`]: NumPy `.npy` files, the exchange format of the command line;
 //! - [`cli`]: the `convoy` commands, which the thin binary in `main.rs` dispatches to.
 
@@ -12,8 +18,10 @@ pub mod cli;
 pub mod engine;
 pub mod graph;
 pub mod import;
+pub mod loadgen;
 pub mod npy;
 pub mod prepare;
 pub mod registry;
 pub mod scheduler;
 pub mod service;
+pub mod telemetry;

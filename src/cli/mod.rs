@@ -3,6 +3,7 @@
 //! Commands print for people by default and for programs with `--json`; failures come back as
 //! [`CliError`] so `main` can print one clear line and exit non-zero.
 
+mod bench;
 mod import;
 mod inspect;
 mod predict;
@@ -44,6 +45,8 @@ pub enum Command {
     Predict(predict::PredictArgs),
     /// Convert an ONNX model exported by a training framework into a bundle.
     Import(Box<import::ImportArgs>),
+    /// Measure a server under load, or the engine alone (--local).
+    Bench(bench::BenchArgs),
     /// Run a batch from a NumPy file through a bundle and write the raw graph output.
     Run {
         /// The bundle (.cvb) to run.
@@ -141,6 +144,7 @@ pub fn dispatch(cli: Cli) -> Result<(), CliError> {
         Command::Import(args) => import::import(&args),
         Command::Serve(args) => serve::serve(&args),
         Command::Predict(args) => predict::predict(&args),
+        Command::Bench(args) => bench::bench(&args),
         Command::Run {
             bundle,
             input,

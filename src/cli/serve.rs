@@ -16,6 +16,9 @@ pub struct ServeArgs {
     /// gRPC address (default 127.0.0.1:7171).
     #[arg(long, env = "CONVOY_LISTEN")]
     pub listen: Option<SocketAddr>,
+    /// Serve Prometheus metrics (GET /metrics) on this address (default: not served).
+    #[arg(long, env = "CONVOY_METRICS_LISTEN")]
+    pub metrics_listen: Option<SocketAddr>,
     /// TOML settings file; flags and environment variables override it.
     #[arg(long, env = "CONVOY_CONFIG")]
     pub config: Option<PathBuf>,
@@ -37,6 +40,9 @@ fn resolve(args: &ServeArgs) -> Result<ServeConfig, CliError> {
     }
     if let Some(l) = args.listen {
         config.listen = l;
+    }
+    if let Some(m) = args.metrics_listen {
+        config.metrics_listen = Some(m);
     }
     if let Some(d) = &args.default_model {
         config.default_model = Some(d.clone());

@@ -1,195 +1,278 @@
-//! Hands prepared samples to compute threads and returns the results.
+//! The batching scheduler: groups waiting samples of one model version into batches and runs
+//! them on dedicated compute threads.
 //!
-//! This is the seam between the async service and the CPU: requests arrive on tokio's I/O
-//! threads, become [`Job`]s in a bounded queue, and dedicated OS threads run them (never
-//! tokio's workers, so compute cannot starve I/O). For now every request is its own batch
-//! ("direct dispatch"); grouping waiting samples from several requests into one batch is the
-//! batching scheduler's job and slots in here without changing callers: `submit` already
-//! answers with the batch size and the time queued and computing.
+//! Data path: `submit` → the version's queue (a [`batcher`] task per model version) → a batch
+//! → a compute thread ([`workers`]) → each request's reply. A batch forms from waiting requests
+//! (a request larger than the batch limit is cut into several parts) and leaves when it is
+//! full, when a compute thread is idle (nothing is gained by waiting: the samples would only
+//! wait longer), or — when every thread is busy — once its oldest sample has waited
+//! `batch_wait`; then it is sealed and goes to the next free thread while later arrivals form
+//! the next batch.
 //!
-//! Bounded: a full queue is refused at once ([`SubmitError::Full`]), so memory never grows with
-//! load. A job whose caller has gone (cancelled, timed out) is skipped, not computed. A panic
-//! inside a computation fails that job only and the worker carries on.
+//! Bounded: each version's queue holds at most `queue_limit` samples; beyond that `submit`
+//! refuses at once (load shedding). A request whose deadline passed before its batch started is
+//! not computed ([`ComputeError::DeadlineExceeded`]); one whose caller went away is dropped.
+//! A failure or panic in a batch fails that batch's requests only.
+//!
+//! How two cores are used: one batch per core (each compute thread runs its batch on one
+//! core), not one batch over both. The engine splits a batch over threads only by whole
+//! samples, so a two-thread engine does the same core-work per batch; separate threads let a
+//! second batch start while the first runs and avoid a thread hand-off inside every batch.
+//! Measured with `convoy bench` (see README, "Batching").
 
-use std::sync::mpsc::{Receiver, SyncSender, TrySendError, sync_channel};
+mod batcher;
+mod workers;
+
+use std::collections::HashMap;
+use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
 use std::sync::{Arc, Mutex};
-use std::thread::JoinHandle;
-use std::time::{Duration, Instant};
+use std::time::Duration;
 
-use tokio::sync::oneshot;
+use tokio::sync::{Semaphore, mpsc, oneshot};
+use tokio::time::Instant;
 
-use crate::engine::RunOptions;
 use crate::registry::ModelVersion;
 
-/// How many threads compute and how much may wait.
+pub use workers::{BatchRunner, EngineRunner};
+
+/// The scheduler's knobs.
 #[derive(Clone, Debug)]
 pub struct SchedulerConfig {
-    /// Compute threads; each runs one job at a time on one core.
+    /// Compute threads; each runs one batch at a time on one core.
     pub compute_threads: usize,
-    /// Jobs that may wait for a thread before new ones are refused.
-    pub queue_capacity: usize,
+    /// Most samples in one batch.
+    pub batch_limit: usize,
+    /// Longest a batch keeps collecting while every compute thread is busy.
+    pub batch_wait: Duration,
+    /// Most samples waiting per model version before new requests are refused.
+    pub queue_limit: usize,
 }
 
 impl Default for SchedulerConfig {
     fn default() -> Self {
         SchedulerConfig {
             compute_threads: std::thread::available_parallelism().map_or(2, |n| n.get()),
-            queue_capacity: 64,
+            batch_limit: 8,
+            batch_wait: Duration::from_millis(2),
+            queue_limit: 256,
         }
     }
 }
 
-/// A finished computation.
+/// A finished request.
 #[derive(Clone, Debug)]
 pub struct Computed {
-    /// `count · output_len` raw graph outputs.
+    /// `count · output_len` raw graph outputs, in sample order.
     pub outputs: Vec<f32>,
+    /// Time from submission until the request's last part started computing.
     pub queued: Duration,
+    /// Compute time of the batches the request rode in, added up.
     pub compute: Duration,
+    /// Samples in the (last) batch the request rode in.
     pub batch_size: usize,
 }
 
-/// Why a job was not accepted.
+/// Why a request was not accepted.
 #[derive(Clone, Debug, PartialEq, Eq, thiserror::Error)]
 pub enum SubmitError {
-    #[error("the compute queue is full ({capacity} batches waiting); retry later")]
-    Full { capacity: usize },
+    #[error(
+        "the queue of {model} {version} is full ({limit} samples waiting; setting queue_limit); retry later"
+    )]
+    Full {
+        model: String,
+        version: String,
+        limit: usize,
+    },
     #[error("the server is shutting down")]
     Closed,
 }
 
-/// Why an accepted job failed.
+/// Why an accepted request was not computed.
 #[derive(Clone, Debug, PartialEq, Eq, thiserror::Error)]
 pub enum ComputeError {
-    #[error("computation failed: {reason}")]
-    Failed { reason: String },
-    #[error("computation panicked: {reason}")]
-    Panicked { reason: String },
+    #[error("the deadline passed after {waited_ms} ms in the queue, before computation began")]
+    DeadlineExceeded { waited_ms: u64 },
+    #[error("batch of {batch} samples failed: {reason}")]
+    Failed { batch: usize, reason: String },
+    #[error("batch of {batch} samples panicked: {reason}")]
+    Panicked { batch: usize, reason: String },
 }
 
-/// One unit of work: a request's prepared samples.
-struct Job {
-    model: Arc<ModelVersion>,
+type Reply = oneshot::Sender<Result<Computed, ComputeError>>;
+
+/// One request: its prepared samples and where the answer goes. Parts of a large request
+/// share it.
+pub(crate) struct Request {
     inputs: Vec<f32>,
-    count: usize,
-    enqueued: Instant,
-    reply: oneshot::Sender<Result<Computed, ComputeError>>,
+    submitted: Instant,
+    deadline: Option<Instant>,
+    outputs: Mutex<Vec<f32>>,
+    /// Samples not yet computed.
+    remaining: AtomicUsize,
+    reply: Mutex<Option<Reply>>,
+    done: AtomicBool,
+    stats: Mutex<PartStats>,
 }
 
-/// The compute threads and their queue.
+#[derive(Default)]
+struct PartStats {
+    queued: Duration,
+    compute: Duration,
+    batch_size: usize,
+}
+
+impl Request {
+    fn is_cancelled(&self) -> bool {
+        self.reply
+            .lock()
+            .unwrap_or_else(|p| p.into_inner())
+            .as_ref()
+            .is_none_or(|r| r.is_closed())
+    }
+
+    /// Sends the final answer once; later calls do nothing.
+    fn finish(&self, result: Result<Computed, ComputeError>) {
+        if self.done.swap(true, Ordering::AcqRel) {
+            return;
+        }
+        if let Some(tx) = self.reply.lock().unwrap_or_else(|p| p.into_inner()).take() {
+            let _ = tx.send(result);
+        }
+    }
+}
+
+/// A contiguous run of one request's samples: the unit a batch is made of.
+pub(crate) struct Part {
+    request: Arc<Request>,
+    start: usize,
+    count: usize,
+}
+
+/// One model version's queue: the sending side of its batcher.
+struct Queue {
+    tx: mpsc::UnboundedSender<Part>,
+    /// Samples waiting (submitted, not yet taken into a batch).
+    waiting: Arc<AtomicUsize>,
+}
+
+/// The compute threads and the per-version queues.
 pub struct Scheduler {
-    tx: Option<SyncSender<Job>>,
-    capacity: usize,
-    workers: Vec<JoinHandle<()>>,
+    config: SchedulerConfig,
+    queues: Mutex<HashMap<(String, String), Queue>>,
+    permits: Arc<Semaphore>,
+    pool: Arc<workers::Pool>,
+    runner: Arc<dyn BatchRunner>,
 }
 
 impl Scheduler {
-    /// Starts the compute threads.
+    /// Starts the compute threads, running batches with the model's engine.
     pub fn start(config: &SchedulerConfig) -> Scheduler {
-        let capacity = config.queue_capacity.max(1);
-        let (tx, rx) = sync_channel::<Job>(capacity);
-        // A std Mutex around the receiver: workers hold it only while taking the next job.
-        let rx = Arc::new(Mutex::new(rx));
-        let workers = (0..config.compute_threads.max(1))
-            .map(|i| {
-                let rx = Arc::clone(&rx);
-                std::thread::Builder::new()
-                    .name(format!("convoy-compute-{i}"))
-                    .spawn(move || worker(&rx))
-                    // Spawning fails only when the OS is out of threads at start-up, where no
-                    // server could run anyway.
-                    .expect("spawn compute thread")
-            })
-            .collect();
+        Self::with_runner(config, Arc::new(EngineRunner))
+    }
+
+    /// As [`Scheduler::start`] with another way to run a batch (tests use one that records
+    /// batch sizes and can be held).
+    pub fn with_runner(config: &SchedulerConfig, runner: Arc<dyn BatchRunner>) -> Scheduler {
+        let threads = config.compute_threads.max(1);
         Scheduler {
-            tx: Some(tx),
-            capacity,
-            workers,
+            config: SchedulerConfig {
+                compute_threads: threads,
+                batch_limit: config.batch_limit.max(1),
+                batch_wait: config.batch_wait,
+                queue_limit: config.queue_limit.max(1),
+            },
+            queues: Mutex::new(HashMap::new()),
+            permits: Arc::new(Semaphore::new(threads)),
+            pool: Arc::new(workers::Pool::start(threads)),
+            runner,
         }
     }
 
-    /// Queues `count` prepared samples for `model`; the receiver yields the result.
+    pub fn config(&self) -> &SchedulerConfig {
+        &self.config
+    }
+
+    /// Queues `count` prepared samples for `model`; the receiver yields the result. Must be
+    /// called within a tokio runtime (the version's batcher is a task, started on first use).
     ///
     /// # Errors
-    /// The queue is full, or the scheduler is stopping.
+    /// The version's queue is full, or the scheduler is stopping.
     pub fn submit(
         &self,
         model: Arc<ModelVersion>,
         inputs: Vec<f32>,
         count: usize,
+        deadline: Option<Instant>,
     ) -> Result<oneshot::Receiver<Result<Computed, ComputeError>>, SubmitError> {
+        let key = (model.name.clone(), model.version.clone());
+        let mut queues = self.queues.lock().unwrap_or_else(|p| p.into_inner());
+        let queue = queues.entry(key).or_insert_with(|| {
+            let (tx, rx) = mpsc::unbounded_channel();
+            let waiting = Arc::new(AtomicUsize::new(0));
+            tokio::spawn(batcher::run(batcher::Batcher {
+                model: Arc::clone(&model),
+                rx,
+                waiting: Arc::clone(&waiting),
+                permits: Arc::clone(&self.permits),
+                pool: Arc::clone(&self.pool),
+                runner: Arc::clone(&self.runner),
+                batch_limit: self.config.batch_limit,
+                batch_wait: self.config.batch_wait,
+            }));
+            Queue { tx, waiting }
+        });
+        // Reserve room first so that concurrent submitters cannot overshoot the limit.
+        let before = queue.waiting.fetch_add(count, Ordering::AcqRel);
+        if before + count > self.config.queue_limit {
+            queue.waiting.fetch_sub(count, Ordering::AcqRel);
+            crate::telemetry::shed(
+                &model.name,
+                &model.version,
+                crate::telemetry::SHED_QUEUE_FULL,
+            );
+            return Err(SubmitError::Full {
+                model: model.name.clone(),
+                version: model.version.clone(),
+                limit: self.config.queue_limit,
+            });
+        }
+        let out_len = model.output_len();
         let (reply, rx) = oneshot::channel();
-        let job = Job {
-            model,
+        let request = Arc::new(Request {
             inputs,
-            count,
-            enqueued: Instant::now(),
-            reply,
-        };
-        let tx = self.tx.as_ref().ok_or(SubmitError::Closed)?;
-        match tx.try_send(job) {
-            Ok(()) => Ok(rx),
-            Err(TrySendError::Full(_)) => Err(SubmitError::Full {
-                capacity: self.capacity,
-            }),
-            Err(TrySendError::Disconnected(_)) => Err(SubmitError::Closed),
-        }
-    }
-}
-
-impl Drop for Scheduler {
-    /// Closes the queue, lets the workers finish what was accepted, and joins them.
-    fn drop(&mut self) {
-        self.tx.take();
-        for w in self.workers.drain(..) {
-            let _ = w.join();
-        }
-    }
-}
-
-fn worker(rx: &Mutex<Receiver<Job>>) {
-    loop {
-        let job = {
-            let guard = rx.lock().unwrap_or_else(|p| p.into_inner());
-            match guard.recv() {
-                Ok(job) => job,
-                Err(_) => return, // queue closed: shutting down
+            submitted: Instant::now(),
+            deadline,
+            outputs: Mutex::new(vec![0.0; count * out_len]),
+            remaining: AtomicUsize::new(count),
+            reply: Mutex::new(Some(reply)),
+            done: AtomicBool::new(false),
+            stats: Mutex::new(PartStats::default()),
+        });
+        let mut start = 0;
+        while start < count {
+            let n = (count - start).min(self.config.batch_limit);
+            let part = Part {
+                request: Arc::clone(&request),
+                start,
+                count: n,
+            };
+            if queue.tx.send(part).is_err() {
+                queue.waiting.fetch_sub(count - start, Ordering::AcqRel);
+                return Err(SubmitError::Closed);
             }
-        };
-        if job.reply.is_closed() {
-            // The caller is gone (cancelled or timed out): do not compute for nobody.
-            continue;
+            start += n;
         }
-        let queued = job.enqueued.elapsed();
-        let started = Instant::now();
-        let model = Arc::clone(&job.model);
-        let result = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
-            model
-                .engine
-                .run(&job.inputs, job.count, RunOptions::default())
-        }));
-        let compute = started.elapsed();
-        let outcome = match result {
-            Ok(Ok(outputs)) => Ok(Computed {
-                outputs,
-                queued,
-                compute,
-                batch_size: job.count,
-            }),
-            Ok(Err(e)) => Err(ComputeError::Failed {
-                reason: e.to_string(),
-            }),
-            Err(panic) => {
-                let reason = panic
-                    .downcast_ref::<&str>()
-                    .map(|s| s.to_string())
-                    .or_else(|| panic.downcast_ref::<String>().cloned())
-                    .unwrap_or_else(|| "unknown panic".into());
-                tracing::error!(model = %job.model.name, version = %job.model.version, %reason, "batch panicked");
-                Err(ComputeError::Panicked { reason })
-            }
-        };
-        // The caller may have gone meanwhile; then there is no one to tell.
-        let _ = job.reply.send(outcome);
+        crate::telemetry::queue_depth(&model.name, &model.version, before + count);
+        Ok(rx)
+    }
+
+    /// Samples waiting in each version's queue, for metrics and tests.
+    pub fn waiting(&self) -> Vec<((String, String), usize)> {
+        self.queues
+            .lock()
+            .unwrap_or_else(|p| p.into_inner())
+            .iter()
+            .map(|(k, q)| (k.clone(), q.waiting.load(Ordering::Acquire)))
+            .collect()
     }
 }

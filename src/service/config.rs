@@ -12,14 +12,20 @@ use serde::Deserialize;
 pub struct ServeConfig {
     /// Address of the gRPC port.
     pub listen: SocketAddr,
+    /// Address of the Prometheus metrics endpoint (`GET /metrics`); none: not served.
+    pub metrics_listen: Option<SocketAddr>,
     /// Folder of `.cvb` bundles; none: the demo model built into the binary.
     pub models: Option<PathBuf>,
     /// The model an empty request names; none: the only model loaded.
     pub default_model: Option<String>,
     /// Compute threads (each runs one batch at a time).
     pub compute_threads: usize,
-    /// Batches that may wait for a compute thread before requests are refused.
-    pub queue_capacity: usize,
+    /// Most samples in one batch.
+    pub batch_limit: usize,
+    /// Longest a batch keeps collecting while every compute thread is busy, in milliseconds.
+    pub batch_wait_ms: f64,
+    /// Most samples waiting per model version before requests are refused.
+    pub queue_limit: usize,
     /// Samples one request may carry.
     pub max_samples_per_request: usize,
     /// Largest gRPC message accepted, in bytes.
@@ -37,10 +43,13 @@ impl Default for ServeConfig {
         ServeConfig {
             // Loopback by default: exposing the port is a decision, not an accident.
             listen: SocketAddr::from(([127, 0, 0, 1], 7171)),
+            metrics_listen: None,
             models: None,
             default_model: None,
             compute_threads: std::thread::available_parallelism().map_or(2, |n| n.get()),
-            queue_capacity: 64,
+            batch_limit: 8,
+            batch_wait_ms: 2.0,
+            queue_limit: 256,
             max_samples_per_request: 64,
             max_message_bytes: 32 << 20,
             max_image_bytes: 16 << 20,
@@ -90,7 +99,8 @@ impl ServeConfig {
     pub fn validate(&self) -> Result<(), ConfigError> {
         let positive = [
             ("compute_threads", self.compute_threads),
-            ("queue_capacity", self.queue_capacity),
+            ("batch_limit", self.batch_limit),
+            ("queue_limit", self.queue_limit),
             ("max_samples_per_request", self.max_samples_per_request),
             ("max_message_bytes", self.max_message_bytes),
             ("max_image_bytes", self.max_image_bytes),
@@ -104,16 +114,31 @@ impl ServeConfig {
                 });
             }
         }
+        if !(self.batch_wait_ms.is_finite() && (0.0..=10_000.0).contains(&self.batch_wait_ms)) {
+            return Err(ConfigError::Invalid {
+                key: "batch_wait_ms",
+                problem: format!("{} is not between 0 and 10000", self.batch_wait_ms),
+            });
+        }
+        if self.batch_limit > 1024 {
+            return Err(ConfigError::Invalid {
+                key: "batch_limit",
+                problem: "at most 1024".into(),
+            });
+        }
         if self.max_image_pixels == 0 {
             return Err(ConfigError::Invalid {
                 key: "max_image_pixels",
                 problem: "must be at least 1".into(),
             });
         }
-        if self.max_samples_per_request > 1024 {
+        if self.max_samples_per_request > self.queue_limit {
             return Err(ConfigError::Invalid {
                 key: "max_samples_per_request",
-                problem: "at most 1024 (one request is computed as one batch)".into(),
+                problem: format!(
+                    "{} exceeds queue_limit {}: such a request could never be queued",
+                    self.max_samples_per_request, self.queue_limit
+                ),
             });
         }
         Ok(())

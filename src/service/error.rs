@@ -48,6 +48,7 @@ impl ServiceError {
                 _ => Code::InvalidArgument,
             },
             ServiceError::Submit(SubmitError::Full { .. }) => Code::ResourceExhausted,
+            ServiceError::Compute(ComputeError::DeadlineExceeded { .. }) => Code::DeadlineExceeded,
             ServiceError::Submit(SubmitError::Closed) => Code::Unavailable,
             ServiceError::Compute(_) | ServiceError::Internal(_) => Code::Internal,
         }

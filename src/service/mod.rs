@@ -16,7 +16,6 @@ use std::sync::Arc;
 
 use tokio::net::TcpListener;
 use tokio::sync::oneshot;
-use tokio_stream::wrappers::TcpListenerStream;
 use tonic_health::ServingStatus;
 
 pub use config::{ConfigError, ServeConfig};
@@ -25,6 +24,7 @@ use crate::engine::EngineConfig;
 use crate::prepare::ImageLimits;
 use crate::registry::{LoadOutcome, Registry};
 use crate::scheduler::{Scheduler, SchedulerConfig};
+use crate::telemetry::{self, TelemetryError, TelemetryHandle};
 use predictor::{PredictorService, RequestLimits, Shared};
 
 /// The demo model, built into the binary so a fresh checkout can serve something.
@@ -50,6 +50,8 @@ pub enum StartError {
     },
     #[error("reflection service: {0}")]
     Reflection(String),
+    #[error(transparent)]
+    Telemetry(#[from] TelemetryError),
 }
 
 /// A running server.
@@ -57,6 +59,8 @@ pub struct RunningServer {
     pub local_addr: SocketAddr,
     pub registry: Arc<Registry>,
     pub loads: Vec<LoadOutcome>,
+    /// The metrics endpoint (its address, if served); stops with the server.
+    pub telemetry: TelemetryHandle,
     shutdown: Option<oneshot::Sender<()>>,
     task: tokio::task::JoinHandle<Result<(), tonic::transport::Error>>,
 }
@@ -162,10 +166,11 @@ fn fix_oversize_status(headers: &mut http::HeaderMap) {
 /// Invalid settings, an address that cannot be bound, an unreadable models folder.
 pub async fn start(config: &ServeConfig) -> Result<RunningServer, StartError> {
     config.validate()?;
+    let telemetry = telemetry::install(config.metrics_listen)?;
     let registry = Arc::new(Registry::new(
         EngineConfig {
             threads: 1,
-            max_batch: config.max_samples_per_request,
+            max_batch: config.batch_limit,
             ..EngineConfig::default()
         },
         config.default_model.clone(),
@@ -190,6 +195,7 @@ pub async fn start(config: &ServeConfig) -> Result<RunningServer, StartError> {
             Err(reason) => tracing::warn!(origin = %l.origin, %reason, "refused"),
         }
     }
+    telemetry::record_loads(&loads, &registry);
 
     let (reporter, health) = tonic_health::server::health_reporter();
     let snapshot = registry.snapshot();
@@ -233,7 +239,9 @@ pub async fn start(config: &ServeConfig) -> Result<RunningServer, StartError> {
         registry: Arc::clone(&registry),
         scheduler: Scheduler::start(&SchedulerConfig {
             compute_threads: config.compute_threads,
-            queue_capacity: config.queue_capacity,
+            batch_limit: config.batch_limit,
+            batch_wait: std::time::Duration::from_secs_f64(config.batch_wait_ms / 1e3),
+            queue_limit: config.queue_limit,
         }),
         limits: RequestLimits {
             max_samples_per_request: config.max_samples_per_request,
@@ -267,15 +275,21 @@ pub async fn start(config: &ServeConfig) -> Result<RunningServer, StartError> {
             .add_service(health)
             .add_service(reflection)
             .add_service(predictor)
-            .serve_with_incoming_shutdown(TcpListenerStream::new(listener), async {
-                let _ = rx.await;
-            }),
+            // TCP_NODELAY: small replies must not wait for the peer's delayed ACK (~40 ms on
+            // Linux); tonic applies its own nodelay setting only to listeners it binds itself.
+            .serve_with_incoming_shutdown(
+                tonic::transport::server::TcpIncoming::from(listener).with_nodelay(Some(true)),
+                async {
+                    let _ = rx.await;
+                },
+            ),
     );
     tracing::info!(%local_addr, "serving gRPC (convoy.v1.Predictor, grpc.health.v1.Health, reflection)");
     Ok(RunningServer {
         local_addr,
         registry,
         loads,
+        telemetry,
         shutdown: Some(tx),
         task,
     })

@@ -15,6 +15,7 @@ use crate::bundle::manifest::OutputKind;
 use crate::prepare::{ImageLimits, PrepareError, prepare_image, prepare_tensor};
 use crate::registry::{ModelVersion, Registry, VersionState};
 use crate::scheduler::Scheduler;
+use crate::telemetry;
 
 /// Request limits, each with a safe default.
 #[derive(Clone, Debug)]
@@ -55,12 +56,40 @@ impl PredictorService {
 }
 
 impl Shared {
+    /// One request, counted in the metrics whatever its outcome.
     async fn predict(
+        &self,
+        req: api::PredictRequest,
+        received: Instant,
+        deadline: Option<tokio::time::Instant>,
+    ) -> Result<api::PredictReply, ServiceError> {
+        // A guard, so a request whose caller goes away (the future is dropped) still leaves.
+        let _in_flight = telemetry::InFlight::start();
+        let samples = req.samples.len();
+        let mut labels = (
+            telemetry::UNKNOWN.to_string(),
+            telemetry::UNKNOWN.to_string(),
+        );
+        let result = self
+            .predict_inner(req, received, deadline, &mut labels)
+            .await;
+        let code = match &result {
+            Ok(_) => tonic::Code::Ok,
+            Err(e) => e.code(),
+        };
+        telemetry::request_finished(&labels.0, &labels.1, code, samples, received.elapsed());
+        result
+    }
+
+    async fn predict_inner(
         &self,
         mut req: api::PredictRequest,
         received: Instant,
+        deadline: Option<tokio::time::Instant>,
+        labels: &mut (String, String),
     ) -> Result<api::PredictReply, ServiceError> {
         let model = self.registry.resolve(&req.model, &req.version)?;
+        *labels = (model.name.clone(), model.version.clone());
         let count = req.samples.len();
         if count == 0 {
             return Err(ServiceError::NoSamples);
@@ -79,10 +108,13 @@ impl Shared {
             tokio::task::spawn_blocking(move || prepare_all(&prep_model, &samples, &limits))
                 .await
                 .map_err(|e| ServiceError::Internal(format!("preparation task failed: {e}")))??;
-        let pending = self.scheduler.submit(Arc::clone(&model), inputs, count)?;
+        let pending = self
+            .scheduler
+            .submit(Arc::clone(&model), inputs, count, deadline)?;
         let computed = pending
             .await
             .map_err(|_| ServiceError::Internal("the compute thread dropped the job".into()))??;
+        telemetry::queue_wait(&model.name, &model.version, computed.queued);
         let classes = model.output_len();
         let top_k = match req.top_k {
             0 => 5,
@@ -194,7 +226,12 @@ fn prepare_all(
     for (index, (sample, out)) in samples.iter().zip(inputs.chunks_mut(in_len)).enumerate() {
         let result = match &sample.data {
             Some(Data::EncodedImage(bytes)) => match &model.manifest.input.image {
-                Some(prep) => prepare_image(bytes, prep, limits, out).map(|_| ()),
+                Some(prep) => {
+                    let started = Instant::now();
+                    let r = prepare_image(bytes, prep, limits, out).map(|_| ());
+                    telemetry::image_prepared(&model.name, started.elapsed());
+                    r
+                }
                 None => Err(PrepareError::ImageNotAccepted),
             },
             Some(Data::Tensor(t)) => prepare_tensor(&t.shape, &t.f32_le, shape, out),
@@ -240,6 +277,24 @@ fn softmax(x: &[f32]) -> Vec<f32> {
     exps.iter().map(|e| e / sum).collect()
 }
 
+/// The caller's deadline from the `grpc-timeout` header (gRPC over HTTP/2 specification:
+/// up to 8 digits and a unit, H M S m u n).
+fn deadline_of(metadata: &tonic::metadata::MetadataMap) -> Option<tokio::time::Instant> {
+    let v = metadata.get("grpc-timeout")?.to_str().ok()?;
+    let (digits, unit) = v.split_at(v.len().checked_sub(1)?);
+    let n: u64 = digits.parse().ok()?;
+    let d = match unit {
+        "H" => std::time::Duration::from_secs(n.saturating_mul(3600)),
+        "M" => std::time::Duration::from_secs(n.saturating_mul(60)),
+        "S" => std::time::Duration::from_secs(n),
+        "m" => std::time::Duration::from_millis(n),
+        "u" => std::time::Duration::from_micros(n),
+        "n" => std::time::Duration::from_nanos(n),
+        _ => return None,
+    };
+    tokio::time::Instant::now().checked_add(d)
+}
+
 type ReplyStream = Pin<Box<dyn Stream<Item = Result<api::PredictReply, Status>> + Send>>;
 
 #[tonic::async_trait]
@@ -249,9 +304,10 @@ impl Predictor for PredictorService {
         request: Request<api::PredictRequest>,
     ) -> Result<Response<api::PredictReply>, Status> {
         let received = Instant::now();
+        let deadline = deadline_of(request.metadata());
         let reply = self
             .shared
-            .predict(request.into_inner(), received)
+            .predict(request.into_inner(), received, deadline)
             .await
             .inspect_err(|e| tracing::debug!(error = %e, "predict refused"))?;
         Ok(Response::new(reply))
@@ -285,7 +341,7 @@ impl Predictor for PredictorService {
                 let (shared, tx) = (Arc::clone(&shared), tx.clone());
                 tokio::spawn(async move {
                     let tag = req.tag.clone();
-                    let reply = match shared.predict(req, Instant::now()).await {
+                    let reply = match shared.predict(req, Instant::now(), None).await {
                         Ok(r) => r,
                         Err(e) => api::PredictReply {
                             tag,

@@ -1,0 +1,223 @@
+//! The engine alone, without a server: for each batch size, batches of seeded random input run
+//! back to back on the calling thread (and the engine's own threads) for a fixed time;
+//! reported as images per second and the median time of one batch.
+//!
+//! This is the ceiling a server can approach with that batch size and thread count: no
+//! network, no decoding, no queueing.
+
+use std::path::PathBuf;
+use std::time::{Duration, Instant};
+
+use serde::Serialize;
+
+use super::histogram::Histogram;
+use super::inputs::SplitMix64;
+use super::report::number;
+use super::{LoadgenError, MAX_DURATION};
+use crate::bundle::Bundle;
+use crate::engine::{Engine, EngineConfig, RunOptions};
+
+/// Batch sizes measured when none are given.
+pub const DEFAULT_BATCHES: [usize; 7] = [1, 2, 4, 8, 16, 32, 64];
+/// Largest batch size accepted (the engine's default batch limit).
+pub const MAX_BATCH: usize = 1024;
+/// Most batch sizes in one measurement.
+pub const MAX_BATCH_SIZES: usize = 32;
+/// Longest warm-up per batch size; at least one batch always runs first, so the workspace has
+/// grown to the batch before timing starts.
+const MAX_WARMUP: Duration = Duration::from_millis(500);
+
+/// What to measure.
+#[derive(Clone, Debug)]
+pub struct LocalConfig {
+    pub bundle: PathBuf,
+    pub batches: Vec<usize>,
+    /// The engine's threads per batch.
+    pub threads: usize,
+    /// Measured time per batch size.
+    pub duration: Duration,
+    pub seed: u64,
+}
+
+/// One batch size's result.
+#[derive(Clone, Debug, Serialize)]
+pub struct LocalResult {
+    pub batch: usize,
+    /// Batches timed.
+    pub runs: u64,
+    pub images_per_s: f64,
+    /// Median time of one batch, within the histogram's relative error.
+    pub ms_per_batch_p50: f64,
+}
+
+/// Field names are the JSON keys.
+#[derive(Clone, Debug, Serialize)]
+pub struct LocalReport {
+    /// Always true: tells this report from a server run's.
+    pub local: bool,
+    pub bundle: String,
+    pub model: String,
+    pub version: String,
+    pub isa: String,
+    pub threads: usize,
+    /// Measured time per batch size.
+    pub duration_s: f64,
+    pub results: Vec<LocalResult>,
+    pub best_images_per_s: f64,
+    pub best_batch: usize,
+}
+
+impl LocalConfig {
+    /// # Errors
+    /// No batch sizes, too many, one outside 1..=[`MAX_BATCH`], or a duration outside
+    /// (0, 3600 s].
+    pub fn validate(&self) -> Result<(), LoadgenError> {
+        let bad = self.batches.is_empty()
+            || self.batches.len() > MAX_BATCH_SIZES
+            || self.batches.iter().any(|b| !(1..=MAX_BATCH).contains(b));
+        if bad {
+            return Err(LoadgenError::Setting {
+                name: "--batches",
+                value: format!("{:?}", self.batches),
+                allowed: "1 to 32 batch sizes, each between 1 and 1024",
+            });
+        }
+        if self.duration.is_zero() || self.duration > MAX_DURATION {
+            return Err(LoadgenError::Setting {
+                name: "--duration",
+                value: format!("{:?}", self.duration),
+                allowed: "above 0 s and at most 3600 s",
+            });
+        }
+        Ok(())
+    }
+}
+
+/// Measures every batch size of `config` in turn; `on_batch(batch, index, count)` is called
+/// before each.
+///
+/// # Errors
+/// Bad settings, a bundle that does not open or verify, an engine that cannot be built (a
+/// thread count out of range), or a batch the engine refuses.
+pub fn run_local(
+    config: &LocalConfig,
+    mut on_batch: impl FnMut(usize, usize, usize),
+) -> Result<LocalReport, LoadgenError> {
+    config.validate()?;
+    let bundle = Bundle::open(&config.bundle)?;
+    let engine = Engine::new(
+        &bundle,
+        &EngineConfig {
+            threads: config.threads,
+            max_batch: MAX_BATCH,
+            ..EngineConfig::default()
+        },
+    )?;
+    let (in_len, out_len) = (engine.plan().input_len(), engine.plan().output_len());
+    let largest = config.batches.iter().copied().max().unwrap_or(1);
+    let mut rng = SplitMix64(config.seed);
+    // One input for the largest batch; smaller batches use its beginning.
+    let input: Vec<f32> = (0..largest * in_len)
+        .map(|_| rng.unit() * 2.0 - 1.0)
+        .collect();
+    let mut output = vec![0.0f32; largest * out_len];
+    let mut results = Vec::with_capacity(config.batches.len());
+    for (index, &batch) in config.batches.iter().enumerate() {
+        on_batch(batch, index, config.batches.len());
+        let (x, y) = (&input[..batch * in_len], &mut output[..batch * out_len]);
+        let run = |y: &mut [f32]| {
+            engine
+                .run_into(x, batch, RunOptions::default(), y)
+                .map_err(|source| LoadgenError::Run { batch, source })
+        };
+        let warm = Instant::now();
+        loop {
+            run(y)?;
+            if warm.elapsed() >= (config.duration / 10).min(MAX_WARMUP) {
+                break;
+            }
+        }
+        let mut times = Histogram::new();
+        let start = Instant::now();
+        let mut last = start;
+        while last - start < config.duration {
+            run(y)?;
+            let now = Instant::now();
+            times.record(u64::try_from((now - last).as_nanos()).unwrap_or(u64::MAX));
+            last = now;
+        }
+        let elapsed = (last - start).as_secs_f64();
+        results.push(LocalResult {
+            batch,
+            runs: times.len(),
+            images_per_s: (times.len() * batch as u64) as f64 / elapsed,
+            // At least one batch ran (the loop body runs before the duration can pass).
+            ms_per_batch_p50: times.quantile_ppm(500_000).unwrap_or(0) as f64 / 1e6,
+        });
+    }
+    let best = results
+        .iter()
+        .max_by(|a, b| a.images_per_s.total_cmp(&b.images_per_s))
+        .map_or((0.0, 0), |r| (r.images_per_s, r.batch));
+    let manifest = bundle.manifest();
+    Ok(LocalReport {
+        local: true,
+        bundle: config.bundle.display().to_string(),
+        model: manifest.name.clone(),
+        version: manifest.version.clone(),
+        isa: engine.plan().isa().name().to_string(),
+        threads: config.threads,
+        duration_s: config.duration.as_secs_f64(),
+        results,
+        best_images_per_s: best.0,
+        best_batch: best.1,
+    })
+}
+
+impl LocalReport {
+    /// The report for people.
+    pub fn to_text(&self) -> String {
+        use std::fmt::Write as _;
+        let mut s = String::new();
+        let threads = if self.threads == 1 {
+            "thread"
+        } else {
+            "threads"
+        };
+        // Writing to a String cannot fail.
+        let _ = writeln!(
+            s,
+            "engine alone: {} {} from {}, {}, {} {threads}, {} s per batch size",
+            self.model,
+            self.version,
+            self.bundle,
+            self.isa,
+            self.threads,
+            number(self.duration_s)
+        );
+        let _ = writeln!(s);
+        let _ = writeln!(
+            s,
+            "{:>6}  {:>12}  {:>16}  {:>10}  {:>8}",
+            "batch", "images/s", "ms/batch (p50)", "ms/image", "batches"
+        );
+        for r in &self.results {
+            let _ = writeln!(
+                s,
+                "{:>6}  {:>12}  {:>16}  {:>10}  {:>8}",
+                r.batch,
+                number(r.images_per_s),
+                number(r.ms_per_batch_p50),
+                number(r.ms_per_batch_p50 / r.batch as f64),
+                r.runs
+            );
+        }
+        let _ = writeln!(
+            s,
+            "\nbest: {} images/s at batch {}",
+            number(self.best_images_per_s),
+            self.best_batch
+        );
+        s
+    }
+}
