@@ -131,7 +131,7 @@ pub fn predict(args: &PredictArgs) -> Result<(), CliError> {
             .await
             .map(tonic::Response::into_inner)
             .map_err(|s| CliError::Rpc {
-                code: canonical_name(s.code()).to_string(),
+                code: crate::telemetry::code_name(s.code()).to_string(),
                 message: s.message().to_string(),
             })
     })?;
@@ -211,28 +211,4 @@ fn render(r: &Report) -> String {
         r.compute_us as f64 / 1e3
     );
     s
-}
-
-/// The status code as the gRPC specification spells it (`NOT_FOUND`).
-fn canonical_name(code: tonic::Code) -> &'static str {
-    use tonic::Code::*;
-    match code {
-        Ok => "OK",
-        Cancelled => "CANCELLED",
-        Unknown => "UNKNOWN",
-        InvalidArgument => "INVALID_ARGUMENT",
-        DeadlineExceeded => "DEADLINE_EXCEEDED",
-        NotFound => "NOT_FOUND",
-        AlreadyExists => "ALREADY_EXISTS",
-        PermissionDenied => "PERMISSION_DENIED",
-        ResourceExhausted => "RESOURCE_EXHAUSTED",
-        FailedPrecondition => "FAILED_PRECONDITION",
-        Aborted => "ABORTED",
-        OutOfRange => "OUT_OF_RANGE",
-        Unimplemented => "UNIMPLEMENTED",
-        Internal => "INTERNAL",
-        Unavailable => "UNAVAILABLE",
-        DataLoss => "DATA_LOSS",
-        Unauthenticated => "UNAUTHENTICATED",
-    }
 }

@@ -288,29 +288,8 @@ pub fn number(v: f64) -> String {
     }
 }
 
-/// The status code as the gRPC specification spells it (`RESOURCE_EXHAUSTED`).
-pub fn code_name(code: tonic::Code) -> &'static str {
-    use tonic::Code::*;
-    match code {
-        Ok => "OK",
-        Cancelled => "CANCELLED",
-        Unknown => "UNKNOWN",
-        InvalidArgument => "INVALID_ARGUMENT",
-        DeadlineExceeded => "DEADLINE_EXCEEDED",
-        NotFound => "NOT_FOUND",
-        AlreadyExists => "ALREADY_EXISTS",
-        PermissionDenied => "PERMISSION_DENIED",
-        ResourceExhausted => "RESOURCE_EXHAUSTED",
-        FailedPrecondition => "FAILED_PRECONDITION",
-        Aborted => "ABORTED",
-        OutOfRange => "OUT_OF_RANGE",
-        Unimplemented => "UNIMPLEMENTED",
-        Internal => "INTERNAL",
-        Unavailable => "UNAVAILABLE",
-        DataLoss => "DATA_LOSS",
-        Unauthenticated => "UNAUTHENTICATED",
-    }
-}
+/// Canonical gRPC code names, shared with the metrics labels.
+pub use crate::telemetry::code_name;
 
 #[cfg(test)]
 mod tests {
