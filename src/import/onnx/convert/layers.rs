@@ -19,9 +19,7 @@ impl Converter {
         ctx: &Ctx<'_>,
         inputs: &[Option<Val>],
     ) -> Result<(Op, Vec<usize>, String), ImportError> {
-        let Some(Some(Val::Dyn { name: xn, shape: s })) = inputs.first() else {
-            return Err(ctx.unsupported("input 0 must be the computed value"));
-        };
+        let (xn, s) = ctx.first_dynamic(inputs)?;
         if s.len() != 3 {
             return Err(ctx.unsupported(format!(
                 "only 2-D convolution on [N, C, H, W] is supported, input is [N, {s:?}]"
@@ -77,9 +75,7 @@ impl Converter {
         ctx: &Ctx<'_>,
         inputs: &[Option<Val>],
     ) -> Result<(Op, Vec<usize>, String), ImportError> {
-        let Some(Some(Val::Dyn { name: xn, shape: s })) = inputs.first() else {
-            return Err(ctx.unsupported("input 0 must be the computed value"));
-        };
+        let (xn, s) = ctx.first_dynamic(inputs)?;
         if attr_int_checked(n, "training_mode")?.unwrap_or(0) != 0 {
             return Err(ctx.unsupported("training_mode is set; export the model in eval mode"));
         }
@@ -120,9 +116,7 @@ impl Converter {
         ctx: &Ctx<'_>,
         inputs: &[Option<Val>],
     ) -> Result<(Op, Vec<usize>, String), ImportError> {
-        let Some(Some(Val::Dyn { name: xn, shape: s })) = inputs.first() else {
-            return Err(ctx.unsupported("input A must be the computed value and B a constant"));
-        };
+        let (xn, s) = ctx.first_dynamic(inputs)?;
         if s.len() != 1 {
             return Err(ctx.unsupported(format!("input A is [N, {s:?}], expected [N, K]")));
         }
@@ -334,9 +328,7 @@ impl Converter {
         ctx: &Ctx<'_>,
         inputs: &[Option<Val>],
     ) -> Result<(Op, Vec<usize>, String), ImportError> {
-        let Some(Some(Val::Dyn { name: xn, shape: s })) = inputs.first() else {
-            return Err(ctx.unsupported("input must be the computed value"));
-        };
+        let (xn, s) = ctx.first_dynamic(inputs)?;
         if s.len() != 3 {
             return Err(ctx.unsupported(format!("input [N, {s:?}] is not [N, C, H, W]")));
         }
@@ -380,9 +372,7 @@ impl Converter {
         inputs: &[Option<Val>],
         out: &str,
     ) -> Result<(), ImportError> {
-        let Some(Some(Val::Dyn { name: xn, shape: s })) = inputs.first() else {
-            return Err(ctx.unsupported("input must be the computed value"));
-        };
+        let (xn, s) = ctx.first_dynamic(inputs)?;
         let axes = if self.opset >= 18 {
             match inputs.get(1) {
                 Some(Some(Val::Const(t))) => Some(t.to_i64()),

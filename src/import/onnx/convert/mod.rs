@@ -251,6 +251,20 @@ impl Ctx<'_> {
             problem: problem.into(),
         }
     }
+    /// The node's first input, which every op but the binary ones and Concat computes on: a
+    /// dynamic value, never a constant.
+    fn first_dynamic<'v>(
+        &self,
+        inputs: &'v [Option<Val>],
+    ) -> Result<(&'v String, &'v Vec<usize>), ImportError> {
+        match inputs.first() {
+            Some(Some(Val::Dyn { name, shape })) => Ok((name, shape)),
+            _ => {
+                Err(self.unsupported("its first input must be the computed value, not a constant"))
+            }
+        }
+    }
+
     fn not_constant(&self, index: usize) -> ImportError {
         ImportError::NotConstant {
             node: self.node.to_string(),
@@ -466,14 +480,10 @@ impl Converter {
             return Err(ctx.unsupported("the node has no output"));
         }
         // The first input is the dynamic one for every op below except binary ops and Concat.
-        let x =
-            || -> Result<(String, Vec<usize>), ImportError> {
-                match inputs.first() {
-                    Some(Some(Val::Dyn { name, shape })) => Ok((name.clone(), shape.clone())),
-                    _ => Err(ctx
-                        .unsupported("its first input must be the computed value, not a constant")),
-                }
-            };
+        let x = || -> Result<(String, Vec<usize>), ImportError> {
+            let (name, shape) = ctx.first_dynamic(inputs)?;
+            Ok((name.clone(), shape.clone()))
+        };
         let konst = |i: usize| -> Result<Option<&ConstTensor>, ImportError> {
             match inputs.get(i) {
                 None | Some(None) => Ok(None),

@@ -14,9 +14,7 @@ impl Converter {
         ctx: &Ctx<'_>,
         inputs: &[Option<Val>],
     ) -> Result<(Op, Vec<usize>, String), ImportError> {
-        let Some(Some(Val::Dyn { name: xn, shape: s })) = inputs.first() else {
-            return Err(ctx.unsupported("input 0 must be the computed value"));
-        };
+        let (xn, s) = ctx.first_dynamic(inputs)?;
         let target = match inputs.get(1) {
             Some(Some(Val::Const(t))) => t.to_i64(),
             _ => return Err(ctx.not_constant(1)),
@@ -34,9 +32,7 @@ impl Converter {
         ctx: &Ctx<'_>,
         inputs: &[Option<Val>],
     ) -> Result<(Op, Vec<usize>, String), ImportError> {
-        let Some(Some(Val::Dyn { name: xn, shape: s })) = inputs.first() else {
-            return Err(ctx.unsupported("input 0 must be the computed value"));
-        };
+        let (xn, s) = ctx.first_dynamic(inputs)?;
         let axes = if self.opset >= 13 {
             match inputs.get(1) {
                 Some(Some(Val::Const(t))) => Some(t.to_i64()),
@@ -106,9 +102,7 @@ impl Converter {
         ctx: &Ctx<'_>,
         inputs: &[Option<Val>],
     ) -> Result<(Op, Vec<usize>, String), ImportError> {
-        let Some(Some(Val::Dyn { name: xn, shape: s })) = inputs.first() else {
-            return Err(ctx.unsupported("input 0 must be the computed value"));
-        };
+        let (xn, s) = ctx.first_dynamic(inputs)?;
         let mode = attr_string_checked(n, "mode")?.unwrap_or_else(|| "constant".into());
         if mode != "constant" {
             return Err(
