@@ -4,6 +4,15 @@ use serde::{Deserialize, Serialize};
 
 use crate::graph::Graph;
 
+/// A manifest enum as the manifest spells it (`logits`, `center_crop`), for reports and the
+/// catalog, so the words are the manifest's own.
+pub fn spelling<T: Serialize>(v: &T) -> String {
+    serde_json::to_value(v)
+        .ok()
+        .and_then(|j| j.as_str().map(str::to_string))
+        .unwrap_or_default()
+}
+
 /// The JSON manifest of a bundle.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct Manifest {

@@ -237,10 +237,7 @@ fn render(r: &ImportReport) -> String {
         "  input      {:?}   output {:?} ({})",
         r.input_shape,
         r.output_shape,
-        match r.output_kind {
-            crate::bundle::manifest::OutputKind::Logits => "logits",
-            crate::bundle::manifest::OutputKind::Probabilities => "probabilities",
-        }
+        crate::bundle::manifest::spelling(&r.output_kind)
     );
     let ops: Vec<String> = r
         .source_ops

@@ -6,7 +6,7 @@ use std::path::Path;
 use serde::Serialize;
 
 use super::{CliError, with_commas};
-use crate::bundle::manifest::{InputSpec, OutputKind};
+use crate::bundle::manifest::{InputSpec, OutputKind, spelling};
 use crate::bundle::{Bundle, FORMAT_VERSION};
 use crate::engine::{CheckReport, Engine, EngineConfig};
 use crate::graph::summary::LayerRow;
@@ -112,14 +112,6 @@ pub fn inspect(path: &Path, json: bool) -> Result<(), CliError> {
     }
 }
 
-/// A manifest enum as the manifest spells it (`logits`, `center_crop`).
-fn spelled<T: Serialize>(v: &T) -> String {
-    serde_json::to_value(v)
-        .ok()
-        .and_then(|j| j.as_str().map(str::to_string))
-        .unwrap_or_default()
-}
-
 fn render_text(r: &Report<'_>) -> String {
     use std::fmt::Write as _;
     let mut s = String::new();
@@ -145,11 +137,11 @@ fn render_text(r: &Report<'_>) -> String {
         let _ = writeln!(
             s,
             "  image    {} {}x{}, resize {}, fit {}, scale {}, mean {:?}, std {:?}",
-            spelled(&img.color),
+            spelling(&img.color),
             img.width,
             img.height,
-            spelled(&img.resize_filter),
-            spelled(&img.fit),
+            spelling(&img.resize_filter),
+            spelling(&img.fit),
             img.scale,
             img.mean,
             img.std
@@ -159,7 +151,7 @@ fn render_text(r: &Report<'_>) -> String {
         s,
         "output     {:?} {}",
         r.output.shape,
-        spelled(&r.output.kind)
+        spelling(&r.output.kind)
     );
     if !r.output.labels.is_empty() {
         let shown: Vec<&str> = r

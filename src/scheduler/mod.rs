@@ -191,10 +191,6 @@ impl Scheduler {
         }
     }
 
-    pub fn config(&self) -> &SchedulerConfig {
-        &self.config
-    }
-
     /// Queues `count` prepared samples for `model`; the receiver yields the result. Must be
     /// called within a tokio runtime (the version's batcher is a task, started on first use).
     ///
@@ -267,15 +263,5 @@ impl Scheduler {
         }
         crate::telemetry::queue_depth(&model.name, &model.version, before + count);
         Ok(rx)
-    }
-
-    /// Samples waiting in each version's queue, for metrics and tests.
-    pub fn waiting(&self) -> Vec<((String, String), usize)> {
-        self.queues
-            .lock()
-            .unwrap_or_else(|p| p.into_inner())
-            .iter()
-            .map(|(k, q)| (k.clone(), q.waiting.load(Ordering::Acquire)))
-            .collect()
     }
 }

@@ -11,7 +11,7 @@ use tonic::{Request, Response, Status, Streaming};
 
 use super::api::{self, predictor_server::Predictor, sample::Data};
 use super::error::ServiceError;
-use crate::bundle::manifest::OutputKind;
+use crate::bundle::manifest::{OutputKind, spelling};
 use crate::prepare::{ImageLimits, PrepareError, prepare_image, prepare_tensor};
 use crate::registry::{ModelVersion, Registry, VersionState};
 use crate::scheduler::Scheduler;
@@ -185,29 +185,22 @@ impl Shared {
     }
 }
 
-fn spelled<T: serde::Serialize>(v: &T) -> String {
-    serde_json::to_value(v)
-        .ok()
-        .and_then(|j| j.as_str().map(str::to_string))
-        .unwrap_or_default()
-}
-
 fn fill_version(e: &mut api::VersionEntry, m: &ModelVersion) {
     let spec = &m.manifest.input;
     e.description = m.manifest.description.clone();
     e.input_shape = spec.shape.iter().map(|&d| d as u32).collect();
     e.image = spec.image.as_ref().map(|i| api::ImageInput {
-        color: spelled(&i.color),
+        color: spelling(&i.color),
         width: i.width as u32,
         height: i.height as u32,
-        resize_filter: spelled(&i.resize_filter),
-        fit: spelled(&i.fit),
+        resize_filter: spelling(&i.resize_filter),
+        fit: spelling(&i.fit),
         scale: i.scale,
         mean: i.mean.clone(),
         std: i.std.clone(),
     });
     e.labels = m.labels.clone();
-    e.output_kind = spelled(&m.output_kind);
+    e.output_kind = spelling(&m.output_kind);
     e.parameters = m.parameters;
     e.multiply_adds = m.multiply_adds;
     e.bundle_sha256 = m.bundle_sha256.clone();

@@ -350,9 +350,4 @@ impl Plan {
     pub fn step_count(&self) -> usize {
         self.steps.len()
     }
-
-    /// Bytes of activation buffers one sample needs.
-    pub fn bytes_per_sample(&self) -> usize {
-        self.buffer_len.iter().sum::<usize>() * 4
-    }
 }
