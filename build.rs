@@ -5,8 +5,9 @@
 //! `prost-build` turns that set into Rust source in `OUT_DIR`, which the crate `include!`s.
 //!
 //! Each schema is one step in `main`: the ONNX messages (prost-build) and convoy's own gRPC
-//! service (tonic-prost-build, which adds the client and server code). The service's encoded
-//! descriptor set is also written to `OUT_DIR` for gRPC server reflection.
+//! services, the predictor and the control service (tonic-prost-build, which adds the client
+//! and server code). Each service's encoded descriptor set is also written to `OUT_DIR` for
+//! gRPC server reflection.
 
 use std::error::Error;
 
@@ -33,23 +34,29 @@ fn main() -> Result<(), Box<dyn Error>> {
     // protox reports no file it read to cargo, so say it here: rebuild when a schema changes.
     println!("cargo:rerun-if-changed={PROTO_ROOT}/{ONNX_PROTO}");
     println!("cargo:rerun-if-changed={PROTO_ROOT}/{SERVICE_PROTO}");
+    println!("cargo:rerun-if-changed={PROTO_ROOT}/{CONTROL_PROTO}");
     println!("cargo:rerun-if-changed=build.rs");
 
     compile_onnx()?;
-    compile_service()?;
+    compile_service(SERVICE_PROTO, "convoy_v1_descriptor.bin")?;
+    compile_service(CONTROL_PROTO, "convoy_control_v1_descriptor.bin")?;
     Ok(())
 }
 
 /// convoy's gRPC contract (package `convoy.v1`, so `$OUT_DIR/convoy.v1.rs`).
 const SERVICE_PROTO: &str = "convoy/v1/predictor.proto";
 
-/// Generates the service's messages, client and server (`convoy.v1.rs`) and its encoded
-/// descriptor set (`convoy_v1_descriptor.bin`) for reflection.
-fn compile_service() -> Result<(), Box<dyn Error>> {
+/// The control service, in a package of its own (`convoy.control.v1`) so that its descriptors
+/// are reflected only on the control port.
+const CONTROL_PROTO: &str = "convoy/v1/control.proto";
+
+/// Generates a service's messages, client and server (`PACKAGE.rs`) and its encoded
+/// descriptor set (`descriptor`) for reflection.
+fn compile_service(proto: &str, descriptor: &str) -> Result<(), Box<dyn Error>> {
     use prost::Message;
-    let fds = protox::compile([SERVICE_PROTO], [PROTO_ROOT])?;
+    let fds = protox::compile([proto], [PROTO_ROOT])?;
     let out = std::path::PathBuf::from(std::env::var("OUT_DIR")?);
-    std::fs::write(out.join("convoy_v1_descriptor.bin"), fds.encode_to_vec())?;
+    std::fs::write(out.join(descriptor), fds.encode_to_vec())?;
     tonic_prost_build::configure()
         .build_client(true)
         .build_server(true)

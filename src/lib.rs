@@ -5,7 +5,9 @@
 //! - [`graph`]: the model graph stored in a bundle, its shape checks and cost counts;
 //! - [`engine`]: plans a bundle for this CPU and runs batches through it;
 //! - [`import`]: ONNX files from training frameworks → bundles;
-//! - [`registry`]: the loaded model versions a server answers with;
+//! - [`registry`]: the model versions a server answers with, and which one is active;
+//! - [`rollout`]: new versions in and old ones out of a running server (folder watch, control
+//!   service);
 //! - [`prepare`]: request samples (encoded images, tensors) → model input;
 //! - [`scheduler`]: batching and the compute threads;
 //! - [`service`]: the gRPC server; [`telemetry`] beside it: Prometheus metrics;
@@ -22,6 +24,7 @@ pub mod loadgen;
 pub mod npy;
 pub mod prepare;
 pub mod registry;
+pub mod rollout;
 pub mod scheduler;
 pub mod service;
 pub mod telemetry;

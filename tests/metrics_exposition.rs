@@ -210,7 +210,7 @@ impl Exposition {
 type LabelSet = Vec<(String, String)>;
 
 /// The families convoy promises: name, type, label names (besides `le`).
-const FAMILIES: [(&str, &str, &[&str]); 13] = [
+const FAMILIES: [(&str, &str, &[&str]); 14] = [
     (
         "convoy_requests_total",
         "counter",
@@ -247,6 +247,7 @@ const FAMILIES: [(&str, &str, &[&str]); 13] = [
         "gauge",
         &["model", "version"],
     ),
+    ("convoy_model_swap_seconds", "histogram", &["model"]),
     (
         "convoy_requests_shed_total",
         "counter",

@@ -7,14 +7,20 @@ use std::time::Duration;
 
 use convoy::bundle::BundleWriter;
 use convoy::bundle::manifest::{InputSpec, OutputKind, OutputSpec};
-use convoy::engine::EngineConfig;
 use convoy::graph::Op;
 use convoy::graph::build::GraphBuilder;
-use convoy::registry::{ModelVersion, Registry};
+use convoy::registry::{LoadSettings, ModelVersion, Policy, Registry};
 use convoy::scheduler::{BatchRunner, ComputeError, Scheduler, SchedulerConfig, SubmitError};
 
 /// A model with input [2] and output [1]; the runner below ignores its engine.
 fn model() -> Arc<ModelVersion> {
+    let r = Registry::new(LoadSettings::default(), Policy::default(), None);
+    r.load_bytes(adder("1"), "test").0.result.unwrap();
+    r.resolve("adder", "").unwrap()
+}
+
+/// The bundle of [`model`], as `version`.
+fn adder(version: &str) -> Vec<u8> {
     let mut b = GraphBuilder::new("x", &[2]);
     let w = b.tensor("w", &[1, 2], vec![1.0, 1.0]);
     let y = b.node(
@@ -29,7 +35,7 @@ fn model() -> Arc<ModelVersion> {
     let (graph, tensors) = b.finish(&y);
     let mut w = BundleWriter::new(
         "adder",
-        "1",
+        version,
         graph,
         InputSpec {
             shape: vec![2],
@@ -43,9 +49,7 @@ fn model() -> Arc<ModelVersion> {
     for (n, s, d) in tensors {
         w.add_tensor(n, &s, d).unwrap();
     }
-    let r = Registry::new(EngineConfig::default(), None);
-    r.load_bytes(w.to_bytes().unwrap(), "test").result.unwrap();
-    r.resolve("adder", "").unwrap()
+    w.to_bytes().unwrap()
 }
 
 /// Sums each sample's two inputs; records batch sizes; optionally waits for a go-ahead per
@@ -266,4 +270,49 @@ async fn a_failed_batch_fails_only_its_requests() {
     // The worker carries on.
     let ok = s.submit(m.clone(), vec![1.0, 2.0], 1, None).unwrap();
     assert_eq!(ok.await.unwrap().unwrap().outputs, [3.0]);
+}
+
+#[tokio::test(start_paused = true)]
+async fn a_retired_version_finishes_its_queue_then_lets_go() {
+    let (s, r, gate) = setup(true, 8, 10, 100);
+    let gate = gate.unwrap();
+    let registry = Registry::new(LoadSettings::default(), Policy::default(), None);
+    registry.load_bytes(adder("1"), "v1").0.result.unwrap();
+    let v1 = registry.resolve("adder", "").unwrap();
+    let a = s.submit(v1.clone(), vec![1.0, 0.0], 1, None).unwrap();
+    until_batches(&r, 1).await; // A computes (held)
+    let b = s.submit(v1.clone(), vec![2.0, 0.0], 1, None).unwrap(); // B waits in the queue
+    settle().await;
+
+    // Version 2 arrives: the registry swaps and releases 1, the scheduler closes its queue.
+    let (outcome, settled) = registry.load_bytes(adder("2"), "v2");
+    outcome.result.unwrap();
+    assert_eq!(settled.switched, Some((Some("1".into()), "2".into())));
+    assert_eq!(settled.released.len(), 1);
+    for (m, _) in &settled.released {
+        s.retire(m);
+    }
+    drop(settled);
+    assert!(v1.is_retired());
+    assert_eq!(registry.resolve("adder", "").unwrap().version, "2");
+    // New work for 1 is refused (the caller chooses again); what was queued still computes.
+    assert!(matches!(
+        s.submit(v1.clone(), vec![3.0, 0.0], 1, None),
+        Err(SubmitError::Retired { .. })
+    ));
+    gate.send(()).unwrap(); // A done
+    until_batches(&r, 2).await;
+    gate.send(()).unwrap(); // B done
+    assert_eq!(a.await.unwrap().unwrap().outputs, [1.0]);
+    assert_eq!(b.await.unwrap().unwrap().outputs, [2.0]);
+    // Its batcher has ended and no batch holds it: this test's handle is the last one.
+    for _ in 0..200 {
+        if Arc::strong_count(&v1) == 1 {
+            break;
+        }
+        settle().await;
+        std::thread::sleep(Duration::from_millis(1));
+    }
+    assert_eq!(Arc::strong_count(&v1), 1);
+    assert_eq!(s.open_queues(), 0);
 }

@@ -48,7 +48,14 @@ fn models_dir(dir: &Path) {
 }
 
 async fn server(dir: &Path) -> (RunningServer, PredictorClient<Channel>) {
-    let config = ServeConfig {
+    server_with(dir, |_| {}).await
+}
+
+async fn server_with(
+    dir: &Path,
+    adjust: impl FnOnce(&mut ServeConfig),
+) -> (RunningServer, PredictorClient<Channel>) {
+    let mut config = ServeConfig {
         listen: "127.0.0.1:0".parse().unwrap(),
         models: Some(dir.to_path_buf()),
         default_model: Some("lenet-28".into()),
@@ -57,6 +64,7 @@ async fn server(dir: &Path) -> (RunningServer, PredictorClient<Channel>) {
         max_message_bytes: 1 << 20,
         ..ServeConfig::default()
     };
+    adjust(&mut config);
     let s = start(&config).await.unwrap();
     let client = PredictorClient::connect(format!("http://{}", s.local_addr))
         .await
@@ -185,7 +193,9 @@ async fn predictions_match_the_engine() {
 async fn versions_and_catalog() {
     let dir = tempfile::tempdir().unwrap();
     models_dir(dir.path());
-    let (s, mut client) = server(dir.path()).await;
+    // The version before the highest stays loaded, so a request can name it (by default it
+    // is released: tests/rollout.rs).
+    let (s, mut client) = server_with(dir.path(), |c| c.keep_previous = true).await;
     let x = vec![0.1f32; 3 * 32 * 32];
     let reply = client
         .predict(request("resnet20-32", vec![tensor(&[3, 32, 32], &x)]))
@@ -270,7 +280,7 @@ async fn every_error_has_its_status() {
                 ..Default::default()
             },
             Code::NotFound,
-            "no version \"9\"",
+            "no loaded version \"9\"",
         ),
         (request("", vec![]), Code::InvalidArgument, "no samples"),
         (

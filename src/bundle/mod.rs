@@ -31,7 +31,7 @@ mod writer;
 
 pub use error::{BundleError, TensorProblem};
 pub use manifest::Manifest;
-pub use reader::{Bundle, check_name};
+pub use reader::{Bundle, check_name, peek_identity};
 pub use writer::{
     BundleWriter, CHECK_INPUT_TENSOR, CHECK_OUTPUT_TENSOR, now_rfc3339, write_atomically,
 };

@@ -388,6 +388,32 @@ impl Bundle {
 }
 
 /// Parses the manifest, naming an unknown op precisely rather than as a generic JSON error.
+/// The model name and version a bundle's bytes claim, read from the header and manifest alone
+/// (the manifest's checksum must match; the data section is not looked at). Lets a refused
+/// bundle — a damaged data section, an op this build does not know — be reported under the
+/// model and version it belongs to. `None` when even that much cannot be read.
+pub fn peek_identity(bytes: &[u8]) -> Option<(String, String)> {
+    if bytes.len() < HEADER_LEN || bytes[0..8] != MAGIC {
+        return None;
+    }
+    let mut len = [0u8; 8];
+    len.copy_from_slice(&bytes[16..24]);
+    let manifest_len = u64::from_le_bytes(len);
+    if manifest_len > MAX_MANIFEST_LEN {
+        return None;
+    }
+    let manifest = bytes.get(HEADER_LEN..HEADER_LEN + manifest_len as usize)?;
+    if Sha256::digest(manifest)[..] != bytes[32..64] {
+        return None;
+    }
+    // Loosely typed on purpose: an unknown op must not stop the name from being read.
+    let value: serde_json::Value = serde_json::from_slice(manifest).ok()?;
+    let name = value.get("name")?.as_str()?;
+    let version = value.get("version")?.as_str()?;
+    (check_name(name).is_ok() && validate_version(version).is_ok())
+        .then(|| (name.to_string(), version.to_string()))
+}
+
 fn parse_manifest(bytes: &[u8]) -> Result<Manifest, BundleError> {
     let value: serde_json::Value =
         serde_json::from_slice(bytes).map_err(|source| BundleError::ManifestJson { source })?;

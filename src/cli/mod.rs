@@ -9,6 +9,7 @@ mod inspect;
 mod predict;
 mod run;
 mod serve;
+mod versions;
 
 use std::path::PathBuf;
 
@@ -47,6 +48,8 @@ pub enum Command {
     Import(Box<import::ImportArgs>),
     /// Measure a server under load, or the engine alone (--local).
     Bench(bench::BenchArgs),
+    /// List a server's model versions; activate, retire, roll back (control service).
+    Versions(versions::VersionsArgs),
     /// Run a batch from a NumPy file through a bundle and write the raw graph output.
     Run {
         /// The bundle (.cvb) to run.
@@ -127,6 +130,14 @@ pub(crate) fn with_commas(n: u64) -> String {
     out
 }
 
+/// Prints `value` as pretty JSON and a newline.
+pub(crate) fn print_json<T: serde::Serialize>(value: &T) -> Result<(), CliError> {
+    // Plain data (strings, numbers, lists): serialising it cannot fail.
+    let text = serde_json::to_string_pretty(value).expect("plain data serialises");
+    println!("{text}");
+    Ok(())
+}
+
 fn fmt_dims(d: &[usize]) -> String {
     d.iter()
         .map(|x| x.to_string())
@@ -145,6 +156,7 @@ pub fn dispatch(cli: Cli) -> Result<(), CliError> {
         Command::Serve(args) => serve::serve(&args),
         Command::Predict(args) => predict::predict(&args),
         Command::Bench(args) => bench::bench(&args),
+        Command::Versions(args) => versions::versions(&args),
         Command::Run {
             bundle,
             input,

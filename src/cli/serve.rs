@@ -28,6 +28,29 @@ pub struct ServeArgs {
     /// Compute threads.
     #[arg(long, env = "CONVOY_COMPUTE_THREADS")]
     pub compute_threads: Option<usize>,
+    /// Hold MODEL at VERSION whatever higher versions arrive (repeatable).
+    #[arg(long = "pin", value_name = "MODEL=VERSION", value_parser = parse_pin)]
+    pub pins: Vec<(String, String)>,
+    /// Keep the previously active version loaded as an instant rollback target.
+    #[arg(long, env = "CONVOY_KEEP_PREVIOUS")]
+    pub keep_previous: bool,
+    /// Serve the control service (activate, retire, rescan, load) on --control-listen.
+    #[arg(long, env = "CONVOY_CONTROL_ENABLED")]
+    pub control: bool,
+    /// Address of the control service (default 127.0.0.1:7172).
+    #[arg(long, env = "CONVOY_CONTROL_LISTEN")]
+    pub control_listen: Option<SocketAddr>,
+    /// File whose first line is the control service's bearer token (or set
+    /// CONVOY_CONTROL_TOKEN).
+    #[arg(long, env = "CONVOY_CONTROL_TOKEN_FILE")]
+    pub control_token_file: Option<PathBuf>,
+}
+
+fn parse_pin(s: &str) -> Result<(String, String), String> {
+    match s.split_once('=') {
+        Some((m, v)) if !m.is_empty() && !v.is_empty() => Ok((m.to_string(), v.to_string())),
+        _ => Err(format!("{s:?} is not MODEL=VERSION")),
+    }
 }
 
 fn resolve(args: &ServeArgs) -> Result<ServeConfig, CliError> {
@@ -50,6 +73,21 @@ fn resolve(args: &ServeArgs) -> Result<ServeConfig, CliError> {
     if let Some(t) = args.compute_threads {
         config.compute_threads = t;
     }
+    config.pinned_versions.extend(args.pins.iter().cloned());
+    config.keep_previous |= args.keep_previous;
+    config.control |= args.control;
+    if let Some(a) = args.control_listen {
+        config.control_listen = a;
+    }
+    if let Some(f) = &args.control_token_file {
+        config.control_token_file = Some(f.clone());
+    }
+    // The token itself only from the environment, never from a flag (flags show in `ps`).
+    if let Ok(t) = std::env::var("CONVOY_CONTROL_TOKEN")
+        && !t.trim().is_empty()
+    {
+        config.control_token = Some(t);
+    }
     config.validate()?;
     Ok(config)
 }
@@ -66,13 +104,17 @@ pub fn serve(args: &ServeArgs) -> Result<(), CliError> {
         let loaded = server.loads.iter().filter(|l| l.result.is_ok()).count();
         let refused = server.loads.len() - loaded;
         eprintln!(
-            "convoy: serving {} model version(s) on {}{}",
+            "convoy: serving {} model version(s) on {}{}{}",
             loaded,
             server.local_addr,
             if refused > 0 {
                 format!(" ({refused} refused; see the log)")
             } else {
                 String::new()
+            },
+            match server.control_addr {
+                Some(a) => format!("; control service on {a}"),
+                None => String::new(),
             }
         );
         let stop = server.take_shutdown();

@@ -80,7 +80,13 @@ pub(crate) struct Tally {
     pub(crate) batch_size: u64,
     /// Model and version of the first ok reply.
     pub(crate) model: Option<(String, String)>,
+    /// Ok replies by the version that computed them (a run across a version swap sees
+    /// several). At most [`MAX_VERSIONS`] entries; later versions count under "other".
+    pub(crate) ok_by_version: BTreeMap<String, u64>,
 }
+
+/// Versions tallied by name; a server answering with more would be misbehaving.
+const MAX_VERSIONS: usize = 64;
 
 struct Shared {
     tally: Mutex<Tally>,
@@ -130,6 +136,14 @@ impl Shared {
                     t.total_us += timing.total_us;
                     t.batch_size += u64::from(timing.batch_size);
                 }
+                let key = if t.ok_by_version.len() < MAX_VERSIONS
+                    || t.ok_by_version.contains_key(&reply.version)
+                {
+                    reply.version.clone()
+                } else {
+                    "other".to_string()
+                };
+                *t.ok_by_version.entry(key).or_default() += 1;
                 if t.model.is_none() {
                     t.model = Some((reply.model, reply.version));
                 }

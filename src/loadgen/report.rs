@@ -67,6 +67,8 @@ pub struct LoadReport {
     /// Requests due (open loop) or sent (closed loop) in the measured window.
     pub requests: u64,
     pub ok: u64,
+    /// Ok replies by the version that computed them.
+    pub ok_by_version: BTreeMap<String, u64>,
     /// Status code (as the gRPC specification spells it) or client-side cause → count.
     pub errors: BTreeMap<&'static str, u64>,
     /// Ok requests per second.
@@ -120,6 +122,7 @@ impl LoadReport {
             inputs: inputs.to_string(),
             requests: t.requests,
             ok: t.ok,
+            ok_by_version: t.ok_by_version,
             errors: t.errors,
             throughput_per_s: t.ok as f64 / secs,
             samples_per_s: t.ok_samples as f64 / secs,
@@ -193,6 +196,14 @@ impl LoadReport {
         let _ = writeln!(s);
         let _ = writeln!(s, "requests        {:>12}", with_commas(self.requests));
         let _ = writeln!(s, "ok              {:>12}", with_commas(self.ok));
+        if self.ok_by_version.len() > 1 {
+            let by: Vec<String> = self
+                .ok_by_version
+                .iter()
+                .map(|(v, n)| format!("{v}: {}", with_commas(*n)))
+                .collect();
+            let _ = writeln!(s, "  by version    {}", by.join(", "));
+        }
         if self.errors.is_empty() {
             let _ = writeln!(s, "errors          {:>12}", 0);
         } else {

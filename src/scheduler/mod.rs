@@ -86,6 +86,8 @@ pub enum SubmitError {
         version: String,
         limit: usize,
     },
+    #[error("{model} {version} was retired after the request chose it")]
+    Retired { model: String, version: String },
     #[error("the server is shutting down")]
     Closed,
 }
@@ -106,7 +108,7 @@ type Reply = oneshot::Sender<Result<Computed, ComputeError>>;
 /// One request: its prepared samples and where the answer goes. Parts of a large request
 /// share it.
 pub(crate) struct Request {
-    inputs: Vec<f32>,
+    inputs: Arc<Vec<f32>>,
     submitted: Instant,
     deadline: Option<Instant>,
     outputs: Mutex<Vec<f32>>,
@@ -161,7 +163,11 @@ struct Queue {
 /// The compute threads and the per-version queues.
 pub struct Scheduler {
     config: SchedulerConfig,
-    queues: Mutex<HashMap<(String, String), Queue>>,
+    /// Keyed by the version's address: two loads of the same name and version (a file
+    /// replaced by a copy of itself) are different versions with queues of their own. An
+    /// address cannot be reused while its entry exists, because the entry's batcher holds the
+    /// version.
+    queues: Mutex<HashMap<usize, Queue>>,
     permits: Arc<Semaphore>,
     pool: Arc<workers::Pool>,
     runner: Arc<dyn BatchRunner>,
@@ -193,18 +199,29 @@ impl Scheduler {
 
     /// Queues `count` prepared samples for `model`; the receiver yields the result. Must be
     /// called within a tokio runtime (the version's batcher is a task, started on first use).
+    /// The inputs are shared, not copied: a caller told [`SubmitError::Retired`] can submit
+    /// the same inputs to the version that replaced it.
     ///
     /// # Errors
     /// The version's queue is full, or the scheduler is stopping.
     pub fn submit(
         &self,
         model: Arc<ModelVersion>,
-        inputs: Vec<f32>,
+        inputs: impl Into<Arc<Vec<f32>>>,
         count: usize,
         deadline: Option<Instant>,
     ) -> Result<oneshot::Receiver<Result<Computed, ComputeError>>, SubmitError> {
-        let key = (model.name.clone(), model.version.clone());
+        let key = Arc::as_ptr(&model) as usize;
         let mut queues = self.queues.lock().unwrap_or_else(|p| p.into_inner());
+        // Checked under the queues lock, which `retire` also takes: a request either lands in
+        // the queue before it is closed (and is computed), or sees the flag and is told to
+        // choose again.
+        if model.is_retired() {
+            return Err(SubmitError::Retired {
+                model: model.name.clone(),
+                version: model.version.clone(),
+            });
+        }
         let queue = queues.entry(key).or_insert_with(|| {
             let (tx, rx) = mpsc::unbounded_channel();
             let waiting = Arc::new(AtomicUsize::new(0));
@@ -238,7 +255,7 @@ impl Scheduler {
         let out_len = model.output_len();
         let (reply, rx) = oneshot::channel();
         let request = Arc::new(Request {
-            inputs,
+            inputs: inputs.into(),
             submitted: Instant::now(),
             deadline,
             outputs: Mutex::new(vec![0.0; count * out_len]),
@@ -263,5 +280,21 @@ impl Scheduler {
         }
         crate::telemetry::queue_depth(&model.name, &model.version, before + count);
         Ok(rx)
+    }
+
+    /// Closes the queue of a version the registry has released (its `retired` flag is already
+    /// set): samples already queued are still batched and computed, then its batcher ends and
+    /// lets go of the version. Later `submit`s for it fail with [`SubmitError::Retired`].
+    pub fn retire(&self, model: &Arc<ModelVersion>) {
+        let key = Arc::as_ptr(model) as usize;
+        let mut queues = self.queues.lock().unwrap_or_else(|p| p.into_inner());
+        // Dropping the sender lets the batcher see the end of its channel once it has taken
+        // every part already sent.
+        queues.remove(&key);
+    }
+
+    /// Model versions with an open queue (for tests and the shutdown log).
+    pub fn open_queues(&self) -> usize {
+        self.queues.lock().unwrap_or_else(|p| p.into_inner()).len()
     }
 }

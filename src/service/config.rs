@@ -1,6 +1,7 @@
 //! Server settings: defaults here, overridden by a TOML file, then by environment variables
 //! and flags (the command line handles those two).
 
+use std::collections::BTreeMap;
 use std::net::SocketAddr;
 use std::path::{Path, PathBuf};
 
@@ -36,6 +37,27 @@ pub struct ServeConfig {
     pub max_image_pixels: u64,
     /// Requests of one stream computed at the same time.
     pub stream_concurrency: usize,
+    /// Watch the models folder with the operating system's change notifications.
+    pub watch_models: bool,
+    /// Also look at the models folder this often, in milliseconds (for file systems without
+    /// change notifications); 0: never.
+    pub rescan_interval_ms: u64,
+    /// Model name → version held active whatever higher versions arrive.
+    pub pinned_versions: BTreeMap<String, String>,
+    /// Keep the previously active version loaded as an instant rollback target.
+    pub keep_previous: bool,
+    /// Let removing a model's last bundle file stop that model (default: it keeps answering).
+    pub retire_last: bool,
+    /// Serve the control service (load, activate, retire, rescan).
+    pub control: bool,
+    /// Address of the control service.
+    pub control_listen: SocketAddr,
+    /// File holding the control service's bearer token (or set `CONVOY_CONTROL_TOKEN`).
+    pub control_token_file: Option<PathBuf>,
+    /// The token itself, when given by the environment or in-process; never read from TOML,
+    /// so that settings files hold no secret.
+    #[serde(skip)]
+    pub control_token: Option<String>,
 }
 
 impl Default for ServeConfig {
@@ -55,6 +77,18 @@ impl Default for ServeConfig {
             max_image_bytes: 16 << 20,
             max_image_pixels: 40_000_000,
             stream_concurrency: 16,
+            watch_models: true,
+            // Notifications usually come first; a scan is a folder listing and one stat per
+            // file, cheap enough every two seconds.
+            rescan_interval_ms: 2000,
+            pinned_versions: BTreeMap::new(),
+            keep_previous: false,
+            retire_last: false,
+            control: false,
+            // Loopback: the control service changes what is served; exposing it is a decision.
+            control_listen: SocketAddr::from(([127, 0, 0, 1], 7172)),
+            control_token_file: None,
+            control_token: None,
         }
     }
 }
@@ -74,6 +108,10 @@ pub enum ConfigError {
     },
     #[error("setting {key}: {problem}")]
     Invalid { key: &'static str, problem: String },
+    #[error(
+        "the control service needs a bearer token of at least {min} bytes: set control_token_file or CONVOY_CONTROL_TOKEN"
+    )]
+    NoControlToken { min: usize },
 }
 
 impl ServeConfig {
@@ -141,6 +179,35 @@ impl ServeConfig {
                 ),
             });
         }
+        if self.control {
+            let token = self.control_token()?;
+            if token.is_none_or(|t| t.len() < crate::rollout::control::MIN_TOKEN_LEN) {
+                return Err(ConfigError::NoControlToken {
+                    min: crate::rollout::control::MIN_TOKEN_LEN,
+                });
+            }
+        }
         Ok(())
+    }
+
+    /// The control token: `control_token` if set, else the first line of
+    /// `control_token_file`, trimmed.
+    ///
+    /// # Errors
+    /// An unreadable token file.
+    pub fn control_token(&self) -> Result<Option<String>, ConfigError> {
+        if let Some(t) = &self.control_token {
+            return Ok(Some(t.trim().to_string()));
+        }
+        match &self.control_token_file {
+            Some(path) => {
+                let text = std::fs::read_to_string(path).map_err(|source| ConfigError::Io {
+                    path: path.clone(),
+                    source,
+                })?;
+                Ok(Some(text.lines().next().unwrap_or("").trim().to_string()))
+            }
+            None => Ok(None),
+        }
     }
 }

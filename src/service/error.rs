@@ -49,7 +49,11 @@ impl ServiceError {
             },
             ServiceError::Submit(SubmitError::Full { .. }) => Code::ResourceExhausted,
             ServiceError::Compute(ComputeError::DeadlineExceeded { .. }) => Code::DeadlineExceeded,
-            ServiceError::Submit(SubmitError::Closed) => Code::Unavailable,
+            // Reached only after choosing again failed twice (a request naming no version), or
+            // for a request naming the version that was retired: either way, try again.
+            ServiceError::Submit(SubmitError::Closed | SubmitError::Retired { .. }) => {
+                Code::Unavailable
+            }
             ServiceError::Compute(_) | ServiceError::Internal(_) => Code::Internal,
         }
     }

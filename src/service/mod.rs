@@ -4,7 +4,9 @@
 //! samples with [`crate::prepare`]) → [`Scheduler`] (compute threads) → back, and
 //! [`error::ServiceError`] turns failures into gRPC status codes in one place.
 //!
-//! [`start`] binds, loads the models, and serves until the returned handle is shut down.
+//! [`start`] loads the models (through [`crate::rollout`], which also keeps watching the models
+//! folder and serves the control service when configured), binds, and serves until the
+//! returned handle is shut down.
 
 pub mod api;
 pub mod config;
@@ -16,13 +18,15 @@ use std::sync::Arc;
 
 use tokio::net::TcpListener;
 use tokio::sync::oneshot;
-use tonic_health::ServingStatus;
 
 pub use config::{ConfigError, ServeConfig};
 
 use crate::engine::EngineConfig;
 use crate::prepare::ImageLimits;
-use crate::registry::{LoadOutcome, Registry};
+use crate::registry::{LoadOutcome, LoadSettings, Policy, Registry};
+use crate::rollout::control::{ControlService, TokenCheck};
+use crate::rollout::watch::{self, WatchConfig, WatchHandle};
+use crate::rollout::{Rollout, RolloutError};
 use crate::scheduler::{Scheduler, SchedulerConfig};
 use crate::telemetry::{self, TelemetryError, TelemetryHandle};
 use predictor::{PredictorService, RequestLimits, Shared};
@@ -57,10 +61,17 @@ pub enum StartError {
 /// A running server.
 pub struct RunningServer {
     pub local_addr: SocketAddr,
+    /// The control service's address, when it is served.
+    pub control_addr: Option<SocketAddr>,
     pub registry: Arc<Registry>,
+    pub rollout: Arc<Rollout>,
+    /// What the first look at the models (folder or built-in demo) loaded and refused.
     pub loads: Vec<LoadOutcome>,
     /// The metrics endpoint (its address, if served); stops with the server.
     pub telemetry: TelemetryHandle,
+    /// The models folder's watcher; stops with the server.
+    watcher: Option<WatchHandle>,
+    control: Option<ControlServer>,
     shutdown: Option<oneshot::Sender<()>>,
     task: tokio::task::JoinHandle<Result<(), tonic::transport::Error>>,
 }
@@ -74,6 +85,7 @@ impl RunningServer {
         if let Some(tx) = self.shutdown.take() {
             let _ = tx.send(());
         }
+        self.stop_side_services().await;
         match self.task.await {
             Ok(r) => r,
             // The server task panicked or was cancelled; nothing more to wait for.
@@ -86,10 +98,23 @@ impl RunningServer {
     ///
     /// # Errors
     /// The transport's failure.
-    pub async fn wait(self) -> Result<(), tonic::transport::Error> {
-        match self.task.await {
+    pub async fn wait(mut self) -> Result<(), tonic::transport::Error> {
+        let result = match (&mut self.task).await {
             Ok(r) => r,
             Err(_) => Ok(()),
+        };
+        self.stop_side_services().await;
+        result
+    }
+
+    /// Stops watching the folder and closes the control service.
+    async fn stop_side_services(&mut self) {
+        self.watcher = None;
+        if let Some(mut c) = self.control.take() {
+            if let Some(tx) = c.shutdown.take() {
+                let _ = tx.send(());
+            }
+            let _ = c.task.await;
         }
     }
 
@@ -160,7 +185,8 @@ fn fix_oversize_status(headers: &mut http::HeaderMap) {
     }
 }
 
-/// Loads the models and starts serving on `config.listen` (port 0 picks a free port).
+/// Loads the models and starts serving on `config.listen` (port 0 picks a free port), with the
+/// models folder watched and, when configured, the control service on `config.control_listen`.
 ///
 /// # Errors
 /// Invalid settings, an address that cannot be bound, an unreadable models folder.
@@ -168,66 +194,61 @@ pub async fn start(config: &ServeConfig) -> Result<RunningServer, StartError> {
     config.validate()?;
     let telemetry = telemetry::install(config.metrics_listen)?;
     let registry = Arc::new(Registry::new(
-        EngineConfig {
-            threads: 1,
-            max_batch: config.batch_limit,
-            ..EngineConfig::default()
+        LoadSettings {
+            engine: EngineConfig {
+                threads: 1,
+                max_batch: config.batch_limit,
+                ..EngineConfig::default()
+            },
+            // A batch of one (an idle server) and a full batch (a busy one).
+            warm_up_batches: vec![1, config.batch_limit],
+        },
+        Policy {
+            pins: config.pinned_versions.clone(),
+            keep_previous: config.keep_previous,
+            retire_last: config.retire_last,
         },
         config.default_model.clone(),
     ));
-    let loads = match &config.models {
-        Some(dir) => registry
-            .load_dir(dir)
-            .map_err(|source| StartError::Models {
-                path: dir.clone(),
-                source,
-            })?,
-        None => vec![registry.load_bytes(DEMO_BUNDLE.to_vec(), "built-in demo")],
-    };
-    for l in &loads {
-        match &l.result {
-            Ok(()) => tracing::info!(
-                origin = %l.origin,
-                model = l.name.as_deref().unwrap_or(""),
-                version = l.version.as_deref().unwrap_or(""),
-                "loaded"
-            ),
-            Err(reason) => tracing::warn!(origin = %l.origin, %reason, "refused"),
-        }
-    }
-    telemetry::record_loads(&loads, &registry);
-
+    let scheduler = Arc::new(Scheduler::start(&SchedulerConfig {
+        compute_threads: config.compute_threads,
+        batch_limit: config.batch_limit,
+        batch_wait: std::time::Duration::from_secs_f64(config.batch_wait_ms / 1e3),
+        queue_limit: config.queue_limit,
+    }));
     let (reporter, health) = tonic_health::server::health_reporter();
-    let snapshot = registry.snapshot();
-    let any = snapshot.values().any(|s| s.active().is_some());
-    reporter
-        .set_service_status(
-            "",
-            if any {
-                ServingStatus::Serving
-            } else {
-                ServingStatus::NotServing
+    let rollout = Arc::new(Rollout::new(
+        Arc::clone(&registry),
+        Arc::clone(&scheduler),
+        reporter,
+        config.models.clone(),
+    ));
+    let first = match &config.models {
+        Some(dir) => rollout.rescan().await.map_err(|e| match e {
+            RolloutError::Folder { path, source } => StartError::Models { path, source },
+            other => StartError::Models {
+                path: dir.clone(),
+                source: std::io::Error::other(other.to_string()),
+            },
+        })?,
+        None => {
+            rollout
+                .load_bytes(DEMO_BUNDLE.to_vec(), "built-in demo")
+                .await
+        }
+    };
+    let watcher = config.models.as_ref().map(|dir| {
+        watch::spawn(
+            Arc::clone(&rollout),
+            WatchConfig {
+                dir: dir.clone(),
+                notifications: config.watch_models,
+                poll_every: (config.rescan_interval_ms > 0)
+                    .then(|| std::time::Duration::from_millis(config.rescan_interval_ms)),
+                on_hangup: true,
             },
         )
-        .await;
-    reporter
-        .set_service_status(
-            "convoy.v1.Predictor",
-            if any {
-                ServingStatus::Serving
-            } else {
-                ServingStatus::NotServing
-            },
-        )
-        .await;
-    for (name, slot) in &snapshot {
-        let status = if slot.active().is_some() {
-            ServingStatus::Serving
-        } else {
-            ServingStatus::NotServing
-        };
-        reporter.set_service_status(name, status).await;
-    }
+    });
 
     let reflection = tonic_reflection::server::Builder::configure()
         .register_encoded_file_descriptor_set(api::FILE_DESCRIPTOR_SET)
@@ -237,12 +258,7 @@ pub async fn start(config: &ServeConfig) -> Result<RunningServer, StartError> {
 
     let shared = Arc::new(Shared {
         registry: Arc::clone(&registry),
-        scheduler: Scheduler::start(&SchedulerConfig {
-            compute_threads: config.compute_threads,
-            batch_limit: config.batch_limit,
-            batch_wait: std::time::Duration::from_secs_f64(config.batch_wait_ms / 1e3),
-            queue_limit: config.queue_limit,
-        }),
+        scheduler,
         limits: RequestLimits {
             max_samples_per_request: config.max_samples_per_request,
             image: ImageLimits {
@@ -256,16 +272,19 @@ pub async fn start(config: &ServeConfig) -> Result<RunningServer, StartError> {
         .max_decoding_message_size(config.max_message_bytes)
         .max_encoding_message_size(config.max_message_bytes);
 
-    let listener = TcpListener::bind(config.listen)
-        .await
-        .map_err(|source| StartError::Bind {
-            addr: config.listen,
-            source,
-        })?;
-    let local_addr = listener.local_addr().map_err(|source| StartError::Bind {
-        addr: config.listen,
-        source,
-    })?;
+    let listener = bind(config.listen).await?;
+    let local_addr = local_addr_of(&listener, config.listen)?;
+    let control = if config.control {
+        let token = config.control_token()?.unwrap_or_default();
+        let listener = bind(config.control_listen).await?;
+        let addr = local_addr_of(&listener, config.control_listen)?;
+        if !addr.ip().is_loopback() {
+            tracing::warn!(%addr, "the control service listens beyond loopback; its token is its only guard");
+        }
+        Some(serve_control(listener, addr, Arc::clone(&rollout), &token)?)
+    } else {
+        None
+    };
     let (tx, rx) = oneshot::channel::<()>();
     let task = tokio::spawn(
         tonic::transport::Server::builder()
@@ -287,9 +306,67 @@ pub async fn start(config: &ServeConfig) -> Result<RunningServer, StartError> {
     tracing::info!(%local_addr, "serving gRPC (convoy.v1.Predictor, grpc.health.v1.Health, reflection)");
     Ok(RunningServer {
         local_addr,
+        control_addr: control.as_ref().map(|c| c.addr),
         registry,
-        loads,
+        rollout,
+        loads: first.loads,
         telemetry,
+        watcher,
+        control,
+        shutdown: Some(tx),
+        task,
+    })
+}
+
+async fn bind(addr: SocketAddr) -> Result<TcpListener, StartError> {
+    TcpListener::bind(addr)
+        .await
+        .map_err(|source| StartError::Bind { addr, source })
+}
+
+fn local_addr_of(listener: &TcpListener, addr: SocketAddr) -> Result<SocketAddr, StartError> {
+    listener
+        .local_addr()
+        .map_err(|source| StartError::Bind { addr, source })
+}
+
+/// The control service's own server: the service behind its token check, and reflection of
+/// its own descriptors only.
+struct ControlServer {
+    addr: SocketAddr,
+    shutdown: Option<oneshot::Sender<()>>,
+    task: tokio::task::JoinHandle<Result<(), tonic::transport::Error>>,
+}
+
+fn serve_control(
+    listener: TcpListener,
+    addr: SocketAddr,
+    rollout: Arc<Rollout>,
+    token: &str,
+) -> Result<ControlServer, StartError> {
+    let service = api::control::control_server::ControlServer::with_interceptor(
+        ControlService::new(rollout),
+        TokenCheck::new(token),
+    );
+    let reflection = tonic_reflection::server::Builder::configure()
+        .register_encoded_file_descriptor_set(api::control::FILE_DESCRIPTOR_SET)
+        .build_v1()
+        .map_err(|e| StartError::Reflection(e.to_string()))?;
+    let (tx, rx) = oneshot::channel::<()>();
+    let task = tokio::spawn(
+        tonic::transport::Server::builder()
+            .add_service(service)
+            .add_service(reflection)
+            .serve_with_incoming_shutdown(
+                tonic::transport::server::TcpIncoming::from(listener).with_nodelay(Some(true)),
+                async {
+                    let _ = rx.await;
+                },
+            ),
+    );
+    tracing::info!(%addr, "serving the control service (convoy.control.v1.Control)");
+    Ok(ControlServer {
+        addr,
         shutdown: Some(tx),
         task,
     })

@@ -13,8 +13,8 @@ use super::api::{self, predictor_server::Predictor, sample::Data};
 use super::error::ServiceError;
 use crate::bundle::manifest::{OutputKind, spelling};
 use crate::prepare::{ImageLimits, PrepareError, prepare_image, prepare_tensor};
-use crate::registry::{ModelVersion, Registry, VersionState};
-use crate::scheduler::Scheduler;
+use crate::registry::{LookupError, ModelVersion, Registry, VersionState};
+use crate::scheduler::{Scheduler, SubmitError};
 use crate::telemetry;
 
 /// Request limits, each with a safe default.
@@ -39,7 +39,7 @@ impl Default for RequestLimits {
 /// State shared by every call.
 pub(crate) struct Shared {
     pub registry: Arc<Registry>,
-    pub scheduler: Scheduler,
+    pub scheduler: Arc<Scheduler>,
     pub limits: RequestLimits,
 }
 
@@ -88,29 +88,67 @@ impl Shared {
         deadline: Option<tokio::time::Instant>,
         labels: &mut (String, String),
     ) -> Result<api::PredictReply, ServiceError> {
-        let model = self.registry.resolve(&req.model, &req.version)?;
-        *labels = (model.name.clone(), model.version.clone());
         let count = req.samples.len();
-        if count == 0 {
-            return Err(ServiceError::NoSamples);
-        }
-        if count > self.limits.max_samples_per_request {
-            return Err(ServiceError::TooManySamples {
-                count,
-                limit: self.limits.max_samples_per_request,
-            });
-        }
-        let samples = std::mem::take(&mut req.samples);
-        let prep_model = Arc::clone(&model);
-        let limits = self.limits.image;
-        // Decoding and resizing images is CPU work: keep it off the async I/O threads.
-        let inputs =
-            tokio::task::spawn_blocking(move || prepare_all(&prep_model, &samples, &limits))
-                .await
-                .map_err(|e| ServiceError::Internal(format!("preparation task failed: {e}")))??;
-        let pending = self
-            .scheduler
-            .submit(Arc::clone(&model), inputs, count, deadline)?;
+        let samples = Arc::new(std::mem::take(&mut req.samples));
+        // Prepared inputs and the version they were prepared for.
+        let mut prepared: Option<(Arc<ModelVersion>, Arc<Vec<f32>>)> = None;
+        // A request that names no version and meets a version being retired between choosing
+        // it and queueing (a swap in between) chooses again; twice in a row takes two swaps
+        // within one request's preparation, and a third attempt is given up as unavailable.
+        let mut attempts = 0;
+        let (model, pending) = loop {
+            attempts += 1;
+            let model = self.registry.resolve(&req.model, &req.version)?;
+            *labels = (model.name.clone(), model.version.clone());
+            if count == 0 {
+                return Err(ServiceError::NoSamples);
+            }
+            if count > self.limits.max_samples_per_request {
+                return Err(ServiceError::TooManySamples {
+                    count,
+                    limit: self.limits.max_samples_per_request,
+                });
+            }
+            let inputs = match prepared.take() {
+                // The new version takes its input the same way: no need to prepare again.
+                Some((before, inputs)) if before.manifest.input == model.manifest.input => inputs,
+                _ => {
+                    let (prep_model, samples) = (Arc::clone(&model), Arc::clone(&samples));
+                    let limits = self.limits.image;
+                    // Decoding and resizing images is CPU work: keep it off the async I/O
+                    // threads.
+                    Arc::new(
+                        tokio::task::spawn_blocking(move || {
+                            prepare_all(&prep_model, &samples, &limits)
+                        })
+                        .await
+                        .map_err(|e| {
+                            ServiceError::Internal(format!("preparation task failed: {e}"))
+                        })??,
+                    )
+                }
+            };
+            match self
+                .scheduler
+                .submit(Arc::clone(&model), Arc::clone(&inputs), count, deadline)
+            {
+                Ok(pending) => break (model, pending),
+                Err(SubmitError::Retired { .. }) if req.version.is_empty() && attempts < 3 => {
+                    prepared = Some((model, inputs));
+                }
+                Err(SubmitError::Retired {
+                    model: name,
+                    version,
+                }) => {
+                    return Err(ServiceError::Lookup(LookupError::UnknownVersion {
+                        name,
+                        version,
+                        available: "(retired while the request waited; ask Catalog)".into(),
+                    }));
+                }
+                Err(e) => return Err(e.into()),
+            }
+        };
         let computed = pending
             .await
             .map_err(|_| ServiceError::Internal("the compute thread dropped the job".into()))??;
@@ -152,17 +190,22 @@ impl Shared {
                     .versions
                     .iter()
                     .map(|v| {
-                        let (state, reason) = match &v.state {
-                            VersionState::Loaded if v.version == active => {
-                                ("active", String::new())
-                            }
-                            VersionState::Loaded => ("loaded", String::new()),
-                            VersionState::Refused { reason } => ("refused", reason.clone()),
+                        let state = match &v.state {
+                            VersionState::Ready if v.version == active => "active",
+                            s => s.word(),
+                        };
+                        let reason = match &v.state {
+                            VersionState::Refused(r) => r.to_string(),
+                            VersionState::Retired { reason } => reason.clone(),
+                            VersionState::Loading | VersionState::Ready => String::new(),
                         };
                         let mut e = api::VersionEntry {
                             version: v.version.clone(),
                             state: state.into(),
                             reason,
+                            bundle_sha256: v.bundle_sha256.clone(),
+                            origin: v.origin.clone(),
+                            note: v.note.clone(),
                             ..Default::default()
                         };
                         if let Some(m) = &v.model {
@@ -175,12 +218,22 @@ impl Shared {
                     name,
                     active_version: active,
                     versions,
+                    pinned_version: slot.pinned.clone().unwrap_or_default(),
                 }
             })
             .collect();
         api::CatalogReply {
             models,
             default_model: self.registry.default_model().unwrap_or_default(),
+            unreadable_files: self
+                .registry
+                .unreadable()
+                .into_iter()
+                .map(|u| api::UnreadableFile {
+                    file: u.origin,
+                    reason: u.refusal.to_string(),
+                })
+                .collect(),
         }
     }
 }

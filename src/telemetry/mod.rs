@@ -28,6 +28,7 @@
 //! | `convoy_image_prepare_seconds` | histogram | model |
 //! | `convoy_model_loads_total` | counter | model, outcome |
 //! | `convoy_model_active_version` | gauge | model, version |
+//! | `convoy_model_swap_seconds` | histogram | model |
 //! | `convoy_requests_shed_total` | counter | model, version, reason |
 
 mod endpoint;
@@ -44,7 +45,7 @@ pub use endpoint::{CONTENT_TYPE, PATH};
 pub use names::{SHED_CANCELLED, SHED_DEADLINE, SHED_QUEUE_FULL};
 pub use record::{
     InFlight, UNKNOWN, active_version, batch_computed, code_name, image_prepared, in_flight,
-    queue_depth, queue_wait, record_loads, request_finished, shed, version_loaded,
+    queue_depth, queue_wait, request_finished, shed, version_loaded,
 };
 
 /// Why metrics could not be served.

@@ -30,11 +30,16 @@ pub const QUEUED_SAMPLES: &str = "convoy_queued_samples";
 pub const REQUESTS_IN_FLIGHT: &str = "convoy_requests_in_flight";
 /// Decoding and preparing one image. Histogram; labels: model.
 pub const IMAGE_PREPARE_SECONDS: &str = "convoy_image_prepare_seconds";
-/// Model version loads. Labels: model, outcome (`ok`, `refused`).
+/// Model version loads. Labels: model, outcome (`ok`, or the step that refused it: `read`,
+/// `verify`, `plan`, `check_samples`, `warm_up`, `conflict`).
 pub const MODEL_LOADS_TOTAL: &str = "convoy_model_loads_total";
 /// 1 for the version of each model that answers requests naming no version, 0 for a version
 /// that did before. Gauge; labels: model, version.
 pub const MODEL_ACTIVE_VERSION: &str = "convoy_model_active_version";
+/// Time from the start of a version change (a bundle file appearing, an operator's call) to
+/// the new version answering: reading, verifying, planning, check samples, warm-up and the
+/// swap. Histogram; labels: model.
+pub const MODEL_SWAP_SECONDS: &str = "convoy_model_swap_seconds";
 /// Requests refused before compute. Labels: model, version, reason.
 pub const REQUESTS_SHED_TOTAL: &str = "convoy_requests_shed_total";
 
@@ -74,12 +79,13 @@ pub const BATCH_SIZE_BUCKETS: [f64; 9] = [1.0, 2.0, 4.0, 8.0, 16.0, 32.0, 64.0, 
 
 /// The histograms and their buckets. Each histogram is given buckets explicitly: without them
 /// the exporter renders a summary instead.
-const HISTOGRAMS: [(&str, &[f64]); 5] = [
+const HISTOGRAMS: [(&str, &[f64]); 6] = [
     (REQUEST_DURATION_SECONDS, &DURATION_BUCKETS),
     (QUEUE_WAIT_SECONDS, &DURATION_BUCKETS),
     (BATCH_COMPUTE_SECONDS, &DURATION_BUCKETS),
     (IMAGE_PREPARE_SECONDS, &DURATION_BUCKETS),
     (BATCH_SIZE, &BATCH_SIZE_BUCKETS),
+    (MODEL_SWAP_SECONDS, &DURATION_BUCKETS),
 ];
 
 /// The exporter's recorder settings: histogram buckets per metric, nothing else (names are
@@ -140,7 +146,12 @@ pub(crate) fn describe_all() {
     );
     describe_counter!(
         MODEL_LOADS_TOTAL,
-        "Model version loads, by outcome (ok, refused)."
+        "Model version loads, by outcome (ok, or the step that refused the bundle: read, verify, plan, check_samples, warm_up, conflict)."
+    );
+    describe_histogram!(
+        MODEL_SWAP_SECONDS,
+        Unit::Seconds,
+        "Time from the start of a version change to the new version answering (load, checks, warm-up, swap)."
     );
     describe_gauge!(
         MODEL_ACTIVE_VERSION,
@@ -184,6 +195,7 @@ mod tests {
             IMAGE_PREPARE_SECONDS,
             MODEL_LOADS_TOTAL,
             MODEL_ACTIVE_VERSION,
+            MODEL_SWAP_SECONDS,
             REQUESTS_SHED_TOTAL,
         ];
         for name in all {

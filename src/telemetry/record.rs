@@ -16,7 +16,7 @@ use std::time::Duration;
 use metrics::{counter, gauge, histogram};
 
 use super::names::*;
-use crate::registry::{LoadOutcome, Registry};
+use crate::registry::LoadStep;
 
 /// The label value of anything not loaded.
 pub const UNKNOWN: &str = "unknown";
@@ -165,8 +165,8 @@ pub fn image_prepared(model: &str, decode_and_prepare: Duration) {
 /// The `model` label of a refused load keeps the name the caller gives (`unknown` when the
 /// bundle was unreadable): those names come from the operator's bundle files, not from
 /// clients, so they stay bounded, and they say which model failed.
-pub fn version_loaded(model: &str, version: &str, ok: bool) {
-    if ok {
+pub fn version_loaded(model: &str, version: &str, outcome: Result<(), LoadStep>) {
+    if outcome.is_ok() {
         LOADED
             .write()
             .unwrap_or_else(PoisonError::into_inner)
@@ -175,7 +175,10 @@ pub fn version_loaded(model: &str, version: &str, ok: bool) {
             .insert(version.to_owned());
         export_at_zero(model, version);
     }
-    let outcome = if ok { "ok" } else { "refused" };
+    let outcome = match outcome {
+        Ok(()) => "ok",
+        Err(step) => step.as_str(),
+    };
     counter!(MODEL_LOADS_TOTAL, "model" => model.to_owned(), "outcome" => outcome).increment(1);
 }
 
@@ -200,14 +203,20 @@ fn export_at_zero(model: &str, version: &str) {
     for name in [QUEUE_WAIT_SECONDS, BATCH_COMPUTE_SECONDS, BATCH_SIZE] {
         let _ = histogram!(name, "model" => m.clone(), "version" => v.clone());
     }
-    for name in [REQUEST_DURATION_SECONDS, IMAGE_PREPARE_SECONDS] {
+    for name in [
+        REQUEST_DURATION_SECONDS,
+        IMAGE_PREPARE_SECONDS,
+        MODEL_SWAP_SECONDS,
+    ] {
         let _ = histogram!(name, "model" => m.clone());
     }
 }
 
 /// `version` of `model` now answers requests that name no version; the version that did
-/// before drops to 0.
-pub fn active_version(model: &str, version: &str) {
+/// before drops to 0. `took` is the time from the start of the change (a file appearing, an
+/// operator's call) to the swap.
+pub fn active_version(model: &str, version: &str, took: Duration) {
+    histogram!(MODEL_SWAP_SECONDS, "model" => model_label(model)).record(took.as_secs_f64());
     let (model, version) = labels(model, version);
     let mut active = ACTIVE.lock().unwrap_or_else(PoisonError::into_inner);
     if let Some(previous) = active.insert(model.clone(), version.clone())
@@ -223,22 +232,6 @@ pub fn shed(model: &str, version: &str, reason: &'static str) {
     let (model, version) = labels(model, version);
     counter!(REQUESTS_SHED_TOTAL, "model" => model, "version" => version, "reason" => reason)
         .increment(1);
-}
-
-/// Records what a server's start loaded: every load outcome, then each model's active version.
-pub fn record_loads(loads: &[LoadOutcome], registry: &Registry) {
-    for l in loads {
-        version_loaded(
-            l.name.as_deref().unwrap_or(UNKNOWN),
-            l.version.as_deref().unwrap_or(UNKNOWN),
-            l.result.is_ok(),
-        );
-    }
-    for (name, slot) in registry.snapshot() {
-        if let Some(active) = slot.active() {
-            active_version(&name, &active.version);
-        }
-    }
 }
 
 #[cfg(test)]
@@ -290,7 +283,7 @@ mod tests {
     #[test]
     fn labels_are_bounded_to_loaded_versions() {
         // Names unique to this test: the loaded set is process-wide.
-        version_loaded("labels-test-model", "7", true);
+        version_loaded("labels-test-model", "7", Ok(()));
         assert_eq!(
             labels("labels-test-model", "7"),
             ("labels-test-model".into(), "7".into())
@@ -306,7 +299,7 @@ mod tests {
         assert_eq!(model_label("labels-test-model"), "labels-test-model");
         assert_eq!(model_label("made-up-by-a-client"), UNKNOWN);
         // A refused load does not make its name a label value.
-        version_loaded("labels-test-refused", "1", false);
+        version_loaded("labels-test-refused", "1", Err(LoadStep::Verify));
         assert_eq!(model_label("labels-test-refused"), UNKNOWN);
     }
 }

@@ -36,6 +36,7 @@ FAMILIES = [
     ("convoy_image_prepare_seconds", "histogram", {"model"}),
     ("convoy_model_loads_total", "counter", {"model", "outcome"}),
     ("convoy_model_active_version", "gauge", {"model", "version"}),
+    ("convoy_model_swap_seconds", "histogram", {"model"}),
     ("convoy_requests_shed_total", "counter", {"model", "version", "reason"}),
 ]
 
