@@ -700,3 +700,73 @@ async fn a_vanished_models_folder_keeps_the_loaded_versions() {
     assert_eq!(r.version, "1");
     server.shutdown().await.unwrap();
 }
+
+/// `convoy versions` as an operator runs it: list, roll back, a wrong token.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn the_versions_command_rolls_back() {
+    let dir = tempfile::tempdir().unwrap();
+    publish(&dial(1, true).to_bytes().unwrap(), dir.path(), "dial-1.cvb");
+    publish(&dial(2, true).to_bytes().unwrap(), dir.path(), "dial-2.cvb");
+    let server = serve(dir.path(), |_| {}).await;
+    let (server_addr, control_addr) = (server.local_addr, server.control_addr.unwrap());
+    let run = move |args: Vec<String>, token: &'static str| {
+        tokio::task::spawn_blocking(move || {
+            let out = std::process::Command::new(env!("CARGO_BIN_EXE_convoy"))
+                .args(&args)
+                .env("CONVOY_CONTROL_TOKEN", token)
+                .env_remove("CONVOY_CONTROL_TOKEN_FILE")
+                .output()
+                .unwrap();
+            (
+                out.status.success(),
+                String::from_utf8_lossy(&out.stdout).into_owned(),
+                String::from_utf8_lossy(&out.stderr).into_owned(),
+            )
+        })
+    };
+    let list = vec![
+        "versions".to_string(),
+        "list".into(),
+        "--server".into(),
+        server_addr.to_string(),
+    ];
+    let (ok, out, _) = run(list.clone(), TOKEN).await.unwrap();
+    assert!(ok);
+    let rows: Vec<Vec<&str>> = out
+        .lines()
+        .skip(1)
+        .map(|l| l.split_whitespace().take(3).collect())
+        .collect();
+    assert_eq!(
+        rows,
+        [vec!["dial", "1", "retired"], vec!["dial", "2", "active"]]
+    );
+    let activate = |version: &str| {
+        vec![
+            "versions".to_string(),
+            "activate".into(),
+            "dial".into(),
+            version.into(),
+            "--control".into(),
+            control_addr.to_string(),
+        ]
+    };
+    let (ok, _, err) = run(activate("1"), "not-the-right-token-at-all")
+        .await
+        .unwrap();
+    assert!(!ok);
+    assert!(err.contains("UNAUTHENTICATED"), "{err}");
+    let (ok, out, err) = run(activate("1"), TOKEN).await.unwrap();
+    assert!(ok, "{err}");
+    assert!(out.contains("active   dial 2 -> 1"), "{out}");
+    assert!(out.contains("retired  dial 2: superseded by 1"), "{out}");
+    let (_, out, _) = run(list, TOKEN).await.unwrap();
+    assert!(
+        out.lines().any(|l| l.contains("dial")
+            && l.contains(" 1 ")
+            && l.contains("active")
+            && l.ends_with("pinned")),
+        "{out}"
+    );
+    server.shutdown().await.unwrap();
+}
