@@ -11,12 +11,14 @@
 //! - [`prepare`]: request samples (encoded images, tensors) → model input;
 //! - [`scheduler`]: batching and the compute threads;
 //! - [`service`]: the gRPC server; [`telemetry`] beside it: Prometheus metrics;
+//! - [`drift`]: per-sample statistics, the reference baseline and the drift tests;
 //! - [`loadgen`]: `convoy bench`, load against a server or the engine alone;
 //! - [`npy`]: NumPy `.npy` files, the exchange format of the command line;
 //! - [`cli`]: the `convoy` commands, which the thin binary in `main.rs` dispatches to.
 
 pub mod bundle;
 pub mod cli;
+pub mod drift;
 pub mod engine;
 pub mod graph;
 pub mod import;
