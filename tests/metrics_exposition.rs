@@ -210,7 +210,7 @@ impl Exposition {
 type LabelSet = Vec<(String, String)>;
 
 /// The families convoy promises: name, type, label names (besides `le`).
-const FAMILIES: [(&str, &str, &[&str]); 14] = [
+const FAMILIES: [(&str, &str, &[&str]); 23] = [
     (
         "convoy_requests_total",
         "counter",
@@ -248,6 +248,52 @@ const FAMILIES: [(&str, &str, &[&str]); 14] = [
         &["model", "version"],
     ),
     ("convoy_model_swap_seconds", "histogram", &["model"]),
+    // The demo's bundle carries a drift reference, so its drift series are on the page.
+    (
+        "convoy_drift_samples_total",
+        "counter",
+        &["model", "version"],
+    ),
+    (
+        "convoy_drift_values_total",
+        "counter",
+        &["model", "version", "statistic", "bin"],
+    ),
+    (
+        "convoy_drift_out_of_range_total",
+        "counter",
+        &["model", "version", "statistic"],
+    ),
+    (
+        "convoy_drift_non_finite_total",
+        "counter",
+        &["model", "version", "statistic"],
+    ),
+    (
+        "convoy_drift_predictions_total",
+        "counter",
+        &["model", "version", "class"],
+    ),
+    (
+        "convoy_drift_psi",
+        "gauge",
+        &["model", "version", "statistic"],
+    ),
+    (
+        "convoy_drift_p_value",
+        "gauge",
+        &["model", "version", "statistic"],
+    ),
+    (
+        "convoy_drift_verdict",
+        "gauge",
+        &["model", "version", "statistic"],
+    ),
+    (
+        "convoy_drift_window_samples",
+        "gauge",
+        &["model", "version"],
+    ),
     (
         "convoy_requests_shed_total",
         "counter",

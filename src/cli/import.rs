@@ -5,7 +5,9 @@ use std::path::{Path, PathBuf};
 
 use super::{CliError, with_commas};
 use crate::bundle::manifest::{ColorMode, FitRule, ResizeFilter};
-use crate::import::{ImageOptions, ImportError, ImportOptions, ImportReport, import_onnx};
+use crate::import::{
+    BaselineReport, ImageOptions, ImportError, ImportOptions, ImportReport, import_onnx,
+};
 use crate::npy::read_npy_file;
 
 /// Image options as given on the command line; any one of them makes the input an image.
@@ -99,6 +101,14 @@ pub struct ImportArgs {
     /// The training framework's outputs for --check-input (.npy).
     #[arg(long, requires = "check_input")]
     pub check_output: Option<PathBuf>,
+    /// Reference data for input-drift monitoring, run through the model into a baseline the
+    /// bundle carries: a folder of images (files in it and one subfolder level down, such as
+    /// train/<class>/*.png) or a .npy of prepared inputs (first axis = samples).
+    #[arg(long, value_name = "PATH")]
+    pub reference: Option<PathBuf>,
+    /// Use at most N reference samples, evenly spaced over the sorted set.
+    #[arg(long, value_name = "N", requires = "reference")]
+    pub reference_limit: Option<usize>,
 }
 
 fn options_error(what: &'static str, problem: impl Into<String>) -> CliError {
@@ -193,6 +203,8 @@ pub fn import(args: &ImportArgs) -> Result<(), CliError> {
         image,
         check,
         check_source,
+        reference: args.reference.clone(),
+        reference_limit: args.reference_limit,
     };
     let mut stderr = std::io::stderr();
     let mut progress = |line: &str| {
@@ -210,6 +222,7 @@ fn file_name(p: &Path) -> String {
         .unwrap_or_default()
 }
 
+/// The import printout.
 fn render(r: &ImportReport) -> String {
     use std::fmt::Write as _;
     let mut s = String::new();
@@ -270,5 +283,59 @@ fn render(r: &ImportReport) -> String {
             r.check_samples
         );
     }
+    let _ = writeln!(s, "{}", drift_line(r.drift.as_ref()));
     s
+}
+
+/// The `drift` line of the printout.
+fn drift_line(d: Option<&BaselineReport>) -> String {
+    let Some(d) = d else {
+        return "  drift      no baseline (no --reference given): the server will not monitor input drift"
+            .into();
+    };
+    let what = if d.images {
+        "reference images"
+    } else {
+        "reference samples"
+    };
+    let of = if (d.samples as usize) < d.available {
+        format!(
+            "{} of {} {what} (evenly spaced)",
+            with_commas(d.samples),
+            with_commas(d.available as u64)
+        )
+    } else {
+        format!("{} {what}", with_commas(d.samples))
+    };
+    format!(
+        "  drift      baseline from {of}: {} statistics, {} bytes of JSON",
+        d.statistics,
+        with_commas(d.json_bytes as u64)
+    )
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn drift_line_says_what_the_baseline_is() {
+        let mut d = BaselineReport {
+            reference: PathBuf::from("train"),
+            images: true,
+            samples: 2000,
+            available: 8000,
+            statistics: 8,
+            json_bytes: 12345,
+        };
+        assert_eq!(
+            drift_line(Some(&d)),
+            "  drift      baseline from 2,000 of 8,000 reference images (evenly spaced): 8 \
+             statistics, 12,345 bytes of JSON"
+        );
+        d.available = 2000;
+        d.images = false;
+        assert!(drift_line(Some(&d)).contains("from 2,000 reference samples: 8 statistics"));
+        assert!(drift_line(None).contains("no baseline"));
+    }
 }

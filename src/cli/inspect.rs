@@ -8,6 +8,7 @@ use serde::Serialize;
 use super::{CliError, with_commas};
 use crate::bundle::manifest::{InputSpec, OutputKind, spelling};
 use crate::bundle::{Bundle, FORMAT_VERSION};
+use crate::drift::Baseline;
 use crate::engine::{CheckReport, Engine, EngineConfig};
 use crate::graph::summary::LayerRow;
 
@@ -33,6 +34,40 @@ struct Report<'a> {
     plan_steps: usize,
     folded: &'a [String],
     provenance: &'a crate::bundle::manifest::Provenance,
+    /// The input-drift reference the bundle carries; null when it carries none.
+    drift_baseline: Option<BaselineJson>,
+}
+
+/// A bundle's drift baseline, as far as inspect reports it.
+#[derive(Serialize)]
+struct BaselineJson {
+    /// Reference samples it was built from.
+    samples: Option<u64>,
+    /// Statistic names, in schema order.
+    statistics: Vec<String>,
+    /// Why the stored baseline cannot be used, when it cannot (then the server does not
+    /// monitor this version).
+    problem: Option<String>,
+}
+
+impl BaselineJson {
+    fn of(value: &serde_json::Value) -> Self {
+        let parsed = serde_json::from_value::<Baseline>(value.clone())
+            .map_err(|e| e.to_string())
+            .and_then(|b| b.validate().map(|()| b).map_err(|e| e.to_string()));
+        match parsed {
+            Ok(b) => BaselineJson {
+                samples: Some(b.samples),
+                statistics: b.statistics.into_iter().map(|s| s.name).collect(),
+                problem: None,
+            },
+            Err(problem) => BaselineJson {
+                samples: None,
+                statistics: Vec::new(),
+                problem: Some(problem),
+            },
+        }
+    }
 }
 
 #[derive(Serialize)]
@@ -93,6 +128,7 @@ pub fn inspect(path: &Path, json: bool) -> Result<(), CliError> {
         plan_steps: engine.plan().step_count(),
         folded: engine.plan().folded(),
         provenance: &m.provenance,
+        drift_baseline: m.drift_baseline.as_ref().map(BaselineJson::of),
     };
     let text = if json {
         // Plain data: serialising it cannot fail.
@@ -235,5 +271,22 @@ fn render_text(r: &Report<'_>) -> String {
             let _ = writeln!(s, "check      none stored in this bundle");
         }
     }
+    let _ = writeln!(s, "{}", drift_line(r.drift_baseline.as_ref()));
     s
+}
+
+/// The `drift` line: whether the bundle carries a reference for drift monitoring.
+fn drift_line(b: Option<&BaselineJson>) -> String {
+    match b {
+        None => "drift      no baseline (imported without --reference)".into(),
+        Some(BaselineJson {
+            problem: Some(p), ..
+        }) => format!("drift      baseline present but unusable: {p}"),
+        Some(b) => format!(
+            "drift      baseline from {} reference samples: {} statistics ({})",
+            with_commas(b.samples.unwrap_or(0)),
+            b.statistics.len(),
+            b.statistics.join(", ")
+        ),
+    }
 }

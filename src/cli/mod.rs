@@ -4,6 +4,7 @@
 //! [`CliError`] so `main` can print one clear line and exit non-zero.
 
 mod bench;
+mod drift;
 mod import;
 mod inspect;
 mod predict;
@@ -50,6 +51,8 @@ pub enum Command {
     Bench(bench::BenchArgs),
     /// List a server's model versions; activate, retire, roll back (control service).
     Versions(versions::VersionsArgs),
+    /// Show how a served model's recent inputs compare with its reference (input drift).
+    Drift(drift::DriftArgs),
     /// Run a batch from a NumPy file through a bundle and write the raw graph output.
     Run {
         /// The bundle (.cvb) to run.
@@ -157,6 +160,7 @@ pub fn dispatch(cli: Cli) -> Result<(), CliError> {
         Command::Predict(args) => predict::predict(&args),
         Command::Bench(args) => bench::bench(&args),
         Command::Versions(args) => versions::versions(&args),
+        Command::Drift(args) => drift::drift(&args),
         Command::Run {
             bundle,
             input,

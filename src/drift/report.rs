@@ -58,6 +58,8 @@ pub struct StatReport {
     /// Window samples whose value was non-finite.
     pub non_finite: u64,
     pub verdict: Verdict,
+    /// Window values per reference bin (for plotting against the reference's counts).
+    pub window_bins: Vec<u64>,
 }
 
 /// The drift tests of the predicted class over the current window.
@@ -73,6 +75,8 @@ pub struct ClassReport {
     /// Window samples without a valid prediction.
     pub non_finite: u64,
     pub verdict: Verdict,
+    /// Window predictions per class.
+    pub window_counts: Vec<u64>,
 }
 
 /// Result of [`DriftWindow::report`](super::window::DriftWindow::report).

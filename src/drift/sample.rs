@@ -234,6 +234,28 @@ impl StatSchema {
         probabilities: &[f32],
         out: &mut SampleStats,
     ) -> Result<(), DriftError> {
+        if probabilities.len() != self.classes {
+            return Err(DriftError::OutputLength {
+                expected: self.classes,
+                got: probabilities.len(),
+            });
+        }
+        self.compute_input(input, facts, out)?;
+        self.compute_output(probabilities, out)
+    }
+
+    /// The input half of [`StatSchema::compute`]: every statistic but `top1_probability`,
+    /// `entropy` and the predicted class. The server runs it where the input is prepared (a
+    /// blocking thread), and the cheap output half once the batch is computed.
+    ///
+    /// # Errors
+    /// [`DriftError::InputLength`] or [`DriftError::StatsLength`].
+    pub fn compute_input(
+        &self,
+        input: &[f32],
+        facts: Option<ImageFacts>,
+        out: &mut SampleStats,
+    ) -> Result<(), DriftError> {
         let plane = self.height * self.width;
         let expected = self.channels * plane;
         if input.len() != expected {
@@ -242,19 +264,12 @@ impl StatSchema {
                 got: input.len(),
             });
         }
-        if probabilities.len() != self.classes {
-            return Err(DriftError::OutputLength {
-                expected: self.classes,
-                got: probabilities.len(),
-            });
-        }
         if out.values.len() != self.kinds.len() {
             return Err(DriftError::StatsLength {
                 expected: self.kinds.len(),
                 got: out.values.len(),
             });
         }
-
         let mut non_finite = 0u32;
         if self.channels <= MAX_CHANNEL_STATS {
             for (k, channel) in input.chunks_exact(plane).enumerate() {
@@ -293,6 +308,31 @@ impl StatSchema {
             out.values[slot] = w;
             out.values[slot + 1] = h;
             out.values[slot + 2] = a;
+        }
+        Ok(())
+    }
+
+    /// The output half of [`StatSchema::compute`]: `top1_probability`, `entropy` and the
+    /// predicted class.
+    ///
+    /// # Errors
+    /// [`DriftError::OutputLength`] or [`DriftError::StatsLength`].
+    pub fn compute_output(
+        &self,
+        probabilities: &[f32],
+        out: &mut SampleStats,
+    ) -> Result<(), DriftError> {
+        if probabilities.len() != self.classes {
+            return Err(DriftError::OutputLength {
+                expected: self.classes,
+                got: probabilities.len(),
+            });
+        }
+        if out.values.len() != self.kinds.len() {
+            return Err(DriftError::StatsLength {
+                expected: self.kinds.len(),
+                got: out.values.len(),
+            });
         }
         let summary = OutputSummary::of(probabilities);
         out.values[self.outputs] = summary.top1;

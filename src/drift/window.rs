@@ -235,6 +235,19 @@ impl DriftWindow {
         Ok(())
     }
 
+    /// Samples the window holds when full.
+    pub fn capacity(&self) -> usize {
+        self.config.capacity
+    }
+
+    /// Empties the window but keeps the cumulative counters, so that counters exported to
+    /// Prometheus never go down: what the server does when a version becomes active again.
+    pub fn restart(&self) {
+        let mut st = self.lock();
+        st.len = 0;
+        st.head = 0;
+    }
+
     /// Empties the window and zeroes the counters, keeping schema and baseline.
     pub fn clear(&self) {
         let mut st = self.lock();
@@ -330,6 +343,7 @@ impl DriftWindow {
             let psi_band = psi.map(PsiBand::of);
             let ks_significant = ks.is_some_and(|k| k.p_value < ks_level);
             statistics.push(StatReport {
+                window_bins: bins,
                 name: r.name.clone(),
                 window: values.len(),
                 reference: r.count,
@@ -370,6 +384,7 @@ impl DriftWindow {
                 significant,
                 non_finite: class_non_finite,
                 verdict: Verdict::judge(live_total as usize, min, psi_band, significant),
+                window_counts: live,
             })
         };
         let drift = statistics.iter().any(|s| s.verdict == Verdict::Drift)

@@ -78,4 +78,7 @@ pub enum ImportError {
     CheckMismatch { max_abs_error: f32, bound: f32 },
     #[error(transparent)]
     Bundle(#[from] BundleError),
+    /// The drift reference could not be read or run into a baseline.
+    #[error(transparent)]
+    Reference(#[from] crate::drift::ReferenceError),
 }

@@ -2,8 +2,10 @@
 //!
 //! [`import_onnx`] reads the file (and external data beside it), converts it
 //! ([`onnx::convert`]), builds a bundle, runs the converted model on check inputs — the
-//! caller's reference arrays, or generated ones — and only then writes the bundle, atomically.
-//! A failure at any step leaves no output file.
+//! caller's reference arrays, or generated ones — then, when a drift reference is given, runs
+//! it through the same engine into a baseline ([`crate::drift::reference`]) stored in the
+//! manifest, and only then writes the bundle, atomically. A failure at any step leaves no output
+//! file.
 
 pub mod error;
 pub mod onnx;
@@ -17,6 +19,7 @@ use crate::bundle::manifest::{
     ColorMode, FitRule, ImagePrep, InputSpec, OutputKind, OutputSpec, ResizeFilter,
 };
 use crate::bundle::{Bundle, BundleWriter, MAX_CHECK_SAMPLES};
+use crate::drift::{ReferenceSet, baseline_json, build_baseline};
 use crate::engine::{Engine, EngineConfig, RunOptions, tolerance_check};
 use crate::graph::build::SplitMix64;
 use crate::npy::NpyArray;
@@ -43,6 +46,11 @@ pub struct ImportOptions {
     pub check: Option<(NpyArray, NpyArray)>,
     /// Where `check` came from, for the bundle's record.
     pub check_source: String,
+    /// Reference data for input-drift monitoring: a folder of images or a `.npy` of prepared
+    /// inputs ([`ReferenceSet::open`]); none means the bundle carries no baseline.
+    pub reference: Option<PathBuf>,
+    /// Use at most this many reference samples, evenly spaced.
+    pub reference_limit: Option<usize>,
 }
 
 /// Image preparation as the caller states it; what is left out follows the model.
@@ -123,7 +131,29 @@ pub struct ImportReport {
     pub max_abs_error: f32,
     pub bound: f32,
     pub file_bytes: usize,
+    /// The drift baseline stored, when a reference was given.
+    pub drift: Option<BaselineReport>,
 }
+
+/// What the drift baseline of an import was made from.
+#[derive(Clone, Debug)]
+pub struct BaselineReport {
+    /// The reference folder or `.npy` file.
+    pub reference: PathBuf,
+    /// Whether the reference samples were image files (else rows of prepared inputs).
+    pub images: bool,
+    /// Samples the baseline was built from.
+    pub samples: u64,
+    /// Samples the reference holds (more than `samples` under a limit).
+    pub available: usize,
+    /// Statistics in the baseline.
+    pub statistics: usize,
+    /// Length of the baseline as compact JSON (the manifest stores it indented, longer).
+    pub json_bytes: usize,
+}
+
+/// Reference samples between two progress lines.
+const PROGRESS_EVERY: usize = 1000;
 
 /// Imports `model` and writes the bundle to `output`.
 ///
@@ -140,6 +170,17 @@ pub fn import_onnx(
     let io = |source| ImportError::Io {
         path: model.to_path_buf(),
         source,
+    };
+    // Opened first: a mistyped reference path fails before the conversion work.
+    let reference = match &options.reference {
+        Some(path) => {
+            let set = ReferenceSet::open(path)?;
+            Some(match options.reference_limit {
+                Some(n) => set.limit(n)?,
+                None => set,
+            })
+        }
+        None => None,
     };
     let bytes_len = std::fs::metadata(model).map_err(io)?.len();
     if bytes_len > MAX_ONNX_BYTES {
@@ -280,6 +321,34 @@ pub fn import_onnx(
         &out_shape,
         produced_by,
     )?;
+    let drift = match &reference {
+        Some(set) => {
+            progress(&format!(
+                "drift reference: running {} samples of {}",
+                set.len(),
+                set.path().display()
+            ));
+            let mut shown = 0;
+            let baseline = build_baseline(set, &plain, &engine, &mut |done, total| {
+                if done - shown >= PROGRESS_EVERY || done == total {
+                    shown = done;
+                    progress(&format!("drift reference: {done} of {total} samples"));
+                }
+            })?;
+            let value = baseline_json(&baseline);
+            let report = BaselineReport {
+                reference: set.path().to_path_buf(),
+                images: set.is_images(),
+                samples: baseline.samples,
+                available: set.available(),
+                statistics: baseline.statistics.len(),
+                json_bytes: value.to_string().len(),
+            };
+            writer = writer.drift_baseline(value);
+            Some(report)
+        }
+        None => None,
+    };
     progress(&format!("writing {}", output.display()));
     let bytes = writer.to_bytes()?;
     let file_bytes = bytes.len();
@@ -308,6 +377,7 @@ pub fn import_onnx(
         max_abs_error,
         bound,
         file_bytes,
+        drift,
     })
 }
 

@@ -11,6 +11,7 @@ use std::time::Instant;
 
 use super::ModelVersion;
 use crate::bundle::{Bundle, BundleError, peek_identity};
+use crate::drift::{Monitor, WindowConfig};
 use crate::engine::{Engine, EngineConfig, RunOptions};
 
 /// The step at which a bundle was refused. Also the `step` label of the refusal metric, so the
@@ -82,6 +83,9 @@ pub struct LoadSettings {
     pub engine: EngineConfig,
     /// One warm-up batch of each size (each at most `engine.max_batch`).
     pub warm_up_batches: Vec<usize>,
+    /// The drift window of versions whose bundle carries a reference; `None`: drift
+    /// monitoring off.
+    pub drift: Option<WindowConfig>,
 }
 
 impl Default for LoadSettings {
@@ -89,6 +93,7 @@ impl Default for LoadSettings {
         LoadSettings {
             engine: EngineConfig::default(),
             warm_up_batches: vec![1],
+            drift: Some(WindowConfig::default()),
         }
     }
 }
@@ -173,7 +178,28 @@ fn build(bundle: &Bundle, origin: &str, settings: &LoadSettings) -> Result<Model
         m.output.labels.clone()
     };
     let summary = bundle.summary();
+    // A reference that cannot be used turns monitoring off for this version, with a note; it
+    // is no reason to refuse a model that passed every other step.
+    let (drift, drift_note) = match (&m.drift_baseline, &settings.drift) {
+        (None, _) => (
+            None,
+            "the bundle carries no drift reference (import it with --reference)".to_string(),
+        ),
+        (Some(_), None) => (
+            None,
+            "drift monitoring is off (setting drift_monitoring)".to_string(),
+        ),
+        (Some(b), Some(window)) => match Monitor::new(&m, out_len, b, *window) {
+            Ok(monitor) => (Some(monitor), String::new()),
+            Err(e) => {
+                tracing::warn!(model = %m.name, version = %m.version, error = %e, "drift monitoring off");
+                (None, format!("drift monitoring is off: {e}"))
+            }
+        },
+    };
     Ok(ModelVersion {
+        drift,
+        drift_note,
         name: m.name.clone(),
         version: m.version.clone(),
         output_kind: m.output.kind,

@@ -65,6 +65,10 @@ pub struct ModelVersion {
     pub multiply_adds: u64,
     /// Where it came from: a file, or the binary itself.
     pub origin: String,
+    /// Drift monitoring, when the bundle carries a reference and monitoring is on.
+    pub drift: Option<crate::drift::Monitor>,
+    /// Why `drift` is `None`.
+    pub drift_note: String,
     /// Set once the registry no longer hands this version out; the scheduler then takes no new
     /// work for it (see `Scheduler::retire`).
     pub(crate) retired: AtomicBool,

@@ -435,6 +435,14 @@ impl Rollout {
             }
         }
         let settled = self.registry.settle(name);
+        if settled.switched.is_some()
+            && let Ok(active) = self.registry.resolve(name, "")
+            && let Some(monitor) = &active.drift
+        {
+            // The drift window restarts with each version that becomes active (a version kept
+            // loaded may have served before).
+            monitor.window.restart();
+        }
         if let Some((from, to)) = settled.switched {
             report.switches.push(Switch {
                 model: name.to_string(),

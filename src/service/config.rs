@@ -54,6 +54,12 @@ pub struct ServeConfig {
     pub control_listen: SocketAddr,
     /// File holding the control service's bearer token (or set `CONVOY_CONTROL_TOKEN`).
     pub control_token_file: Option<PathBuf>,
+    /// Compare served inputs and outputs with the reference in each bundle that has one.
+    pub drift_monitoring: bool,
+    /// Samples in each model version's drift window.
+    pub drift_window: usize,
+    /// Significance level of the drift tests (before the Bonferroni correction).
+    pub drift_alpha: f64,
     /// The token itself, when given by the environment or in-process; never read from TOML,
     /// so that settings files hold no secret.
     #[serde(skip)]
@@ -88,6 +94,12 @@ impl Default for ServeConfig {
             // Loopback: the control service changes what is served; exposing it is a decision.
             control_listen: SocketAddr::from(([127, 0, 0, 1], 7172)),
             control_token_file: None,
+            drift_monitoring: true,
+            // See `drift::WindowConfig::default` for why 500.
+            drift_window: 500,
+            // Common practice for a single test; the report divides it by the number of
+            // statistics tested (Bonferroni).
+            drift_alpha: 0.05,
             control_token: None,
         }
     }
@@ -168,6 +180,18 @@ impl ServeConfig {
             return Err(ConfigError::Invalid {
                 key: "max_image_pixels",
                 problem: "must be at least 1".into(),
+            });
+        }
+        if !(50..=100_000).contains(&self.drift_window) {
+            return Err(ConfigError::Invalid {
+                key: "drift_window",
+                problem: format!("{} is not between 50 and 100000", self.drift_window),
+            });
+        }
+        if !(self.drift_alpha > 0.0 && self.drift_alpha < 0.5) {
+            return Err(ConfigError::Invalid {
+                key: "drift_alpha",
+                problem: format!("{} is not between 0 and 0.5", self.drift_alpha),
             });
         }
         if self.max_samples_per_request > self.queue_limit {

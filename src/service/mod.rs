@@ -21,6 +21,7 @@ use tokio::sync::oneshot;
 
 pub use config::{ConfigError, ServeConfig};
 
+use crate::drift::WindowConfig;
 use crate::engine::EngineConfig;
 use crate::prepare::ImageLimits;
 use crate::registry::{LoadOutcome, LoadSettings, Policy, Registry};
@@ -202,6 +203,10 @@ pub async fn start(config: &ServeConfig) -> Result<RunningServer, StartError> {
             },
             // A batch of one (an idle server) and a full batch (a busy one).
             warm_up_batches: vec![1, config.batch_limit],
+            drift: config.drift_monitoring.then_some(WindowConfig {
+                capacity: config.drift_window,
+                ..WindowConfig::default()
+            }),
         },
         Policy {
             pins: config.pinned_versions.clone(),
@@ -210,6 +215,7 @@ pub async fn start(config: &ServeConfig) -> Result<RunningServer, StartError> {
         },
         config.default_model.clone(),
     ));
+    telemetry::drift::watch_drift(&registry, config.drift_alpha);
     let scheduler = Arc::new(Scheduler::start(&SchedulerConfig {
         compute_threads: config.compute_threads,
         batch_limit: config.batch_limit,
@@ -267,6 +273,7 @@ pub async fn start(config: &ServeConfig) -> Result<RunningServer, StartError> {
             },
             stream_concurrency: config.stream_concurrency,
         },
+        drift_alpha: config.drift_alpha,
     });
     let predictor = api::predictor_server::PredictorServer::new(PredictorService::new(shared))
         .max_decoding_message_size(config.max_message_bytes)

@@ -12,6 +12,7 @@ use tonic::{Request, Response, Status, Streaming};
 use super::api::{self, predictor_server::Predictor, sample::Data};
 use super::error::ServiceError;
 use crate::bundle::manifest::{OutputKind, spelling};
+use crate::drift::{SampleStats, Verdict};
 use crate::prepare::{ImageLimits, PrepareError, prepare_image, prepare_tensor};
 use crate::registry::{LookupError, ModelVersion, Registry, VersionState};
 use crate::scheduler::{Scheduler, SubmitError};
@@ -41,6 +42,8 @@ pub(crate) struct Shared {
     pub registry: Arc<Registry>,
     pub scheduler: Arc<Scheduler>,
     pub limits: RequestLimits,
+    /// Significance level of drift reports.
+    pub drift_alpha: f64,
 }
 
 /// The service object handed to tonic.
@@ -91,12 +94,12 @@ impl Shared {
         let count = req.samples.len();
         let samples = Arc::new(std::mem::take(&mut req.samples));
         // Prepared inputs and the version they were prepared for.
-        let mut prepared: Option<(Arc<ModelVersion>, Arc<Vec<f32>>)> = None;
+        let mut prepared: Option<(Arc<ModelVersion>, Prepared)> = None;
         // A request that names no version and meets a version being retired between choosing
         // it and queueing (a swap in between) chooses again; twice in a row takes two swaps
         // within one request's preparation, and a third attempt is given up as unavailable.
         let mut attempts = 0;
-        let (model, pending) = loop {
+        let (model, pending, stats) = loop {
             attempts += 1;
             let model = self.registry.resolve(&req.model, &req.version)?;
             *labels = (model.name.clone(), model.version.clone());
@@ -109,32 +112,40 @@ impl Shared {
                     limit: self.limits.max_samples_per_request,
                 });
             }
-            let inputs = match prepared.take() {
+            let ready = match prepared.take() {
                 // The new version takes its input the same way: no need to prepare again.
-                Some((before, inputs)) if before.manifest.input == model.manifest.input => inputs,
+                Some((before, mut ready)) if before.manifest.input == model.manifest.input => {
+                    // Its drift statistics are kept only if they have the same meaning.
+                    let same = match (&before.drift, &model.drift) {
+                        (Some(a), Some(b)) => a.schema == b.schema,
+                        _ => false,
+                    };
+                    if !same {
+                        ready.stats = None;
+                    }
+                    ready
+                }
                 _ => {
                     let (prep_model, samples) = (Arc::clone(&model), Arc::clone(&samples));
                     let limits = self.limits.image;
                     // Decoding and resizing images is CPU work: keep it off the async I/O
                     // threads.
-                    Arc::new(
-                        tokio::task::spawn_blocking(move || {
-                            prepare_all(&prep_model, &samples, &limits)
-                        })
+                    tokio::task::spawn_blocking(move || prepare_all(&prep_model, &samples, &limits))
                         .await
                         .map_err(|e| {
                             ServiceError::Internal(format!("preparation task failed: {e}"))
-                        })??,
-                    )
+                        })??
                 }
             };
-            match self
-                .scheduler
-                .submit(Arc::clone(&model), Arc::clone(&inputs), count, deadline)
-            {
-                Ok(pending) => break (model, pending),
+            match self.scheduler.submit(
+                Arc::clone(&model),
+                Arc::clone(&ready.inputs),
+                count,
+                deadline,
+            ) {
+                Ok(pending) => break (model, pending, ready.stats),
                 Err(SubmitError::Retired { .. }) if req.version.is_empty() && attempts < 3 => {
-                    prepared = Some((model, inputs));
+                    prepared = Some((model, ready));
                 }
                 Err(SubmitError::Retired {
                     model: name,
@@ -159,10 +170,20 @@ impl Shared {
             k => k as usize,
         }
         .min(classes);
+        let mut stats = stats.map(|s| s.into_iter());
         let outcomes = computed
             .outputs
             .chunks(classes)
-            .map(|raw| outcome(&model, raw, top_k, req.all_scores))
+            .map(|raw| {
+                let probs = probabilities(&model, raw);
+                if let (Some(monitor), Some(mut sample)) =
+                    (&model.drift, stats.as_mut().and_then(Iterator::next))
+                    && monitor.schema.compute_output(&probs, &mut sample).is_ok()
+                {
+                    monitor.record(&sample);
+                }
+                outcome(&model, probs, top_k, req.all_scores)
+            })
             .collect();
         Ok(api::PredictReply {
             model: model.name.clone(),
@@ -260,40 +281,134 @@ fn fill_version(e: &mut api::VersionEntry, m: &ModelVersion) {
     e.created = m.manifest.created.clone();
 }
 
-/// Turns every sample into model input, back to back.
+/// The drift report of `model` in its wire form.
+fn drift_reply(model: &ModelVersion, alpha: f64) -> Result<api::DriftReply, ServiceError> {
+    let mut reply = api::DriftReply {
+        model: model.name.clone(),
+        version: model.version.clone(),
+        ..Default::default()
+    };
+    let Some(monitor) = &model.drift else {
+        reply.note = model.drift_note.clone();
+        return Ok(reply);
+    };
+    let report = monitor
+        .window
+        .report(alpha)
+        .map_err(|e| ServiceError::Internal(format!("drift report: {e}")))?;
+    let verdict = |v: Verdict| spelling(&v);
+    reply.monitored = true;
+    reply.window_capacity = monitor.window.capacity() as u32;
+    reply.window_samples = report.samples as u32;
+    reply.samples_seen = monitor.seen();
+    reply.reference_samples = monitor.baseline.samples;
+    reply.alpha = report.alpha;
+    reply.ks_level = report.ks_level;
+    reply.drift = report.drift;
+    reply.statistics = report
+        .statistics
+        .iter()
+        .map(|s| {
+            let r = monitor.baseline.statistic(&s.name);
+            api::StatisticDrift {
+                name: s.name.clone(),
+                window: s.window as u32,
+                psi: s.psi,
+                ks_statistic: s.ks.map(|k| k.statistic),
+                ks_p_value: s.ks.map(|k| k.p_value),
+                ks_significant: s.ks_significant,
+                out_of_range: s.out_of_range,
+                non_finite: s.non_finite,
+                verdict: verdict(s.verdict),
+                bin_edges: r.map_or_else(Vec::new, |r| {
+                    r.edges.iter().map(|&e| f64::from(e)).collect()
+                }),
+                reference_counts: r.map_or_else(Vec::new, |r| r.bin_counts.clone()),
+                window_counts: s.window_bins.clone(),
+                reference_min: r.map_or(0.0, |r| f64::from(r.min)),
+                reference_max: r.map_or(0.0, |r| f64::from(r.max)),
+            }
+        })
+        .collect();
+    reply.predicted_class = report.predicted_class.as_ref().map(|c| api::ClassDrift {
+        window: c.window as u32,
+        psi: c.psi,
+        chi_square: c.chi_square.map(|x| x.statistic),
+        degrees_of_freedom: c.chi_square.map_or(0, |x| x.dof as u32),
+        p_value: c.chi_square.map(|x| x.p_value),
+        significant: c.significant,
+        verdict: verdict(c.verdict),
+        reference_counts: monitor.baseline.class_counts.clone(),
+        window_counts: c.window_counts.clone(),
+        labels: model.labels.clone(),
+    });
+    Ok(reply)
+}
+
+/// A request's samples as model input (back to back), with each sample's input-side drift
+/// statistics when the version is monitored.
+struct Prepared {
+    inputs: Arc<Vec<f32>>,
+    stats: Option<Vec<SampleStats>>,
+}
+
+/// Turns every sample into model input, and computes the input half of its drift statistics
+/// (on the same blocking thread, while the sample is in cache).
 fn prepare_all(
     model: &ModelVersion,
     samples: &[api::Sample],
     limits: &ImageLimits,
-) -> Result<Vec<f32>, ServiceError> {
+) -> Result<Prepared, ServiceError> {
     let in_len = model.input_len();
     let shape = &model.manifest.input.shape;
     let mut inputs = vec![0.0f32; samples.len() * in_len];
+    let mut stats = model.drift.as_ref().map(|m| {
+        (0..samples.len())
+            .map(|_| m.schema.new_stats())
+            .collect::<Vec<_>>()
+    });
     for (index, (sample, out)) in samples.iter().zip(inputs.chunks_mut(in_len)).enumerate() {
-        let result = match &sample.data {
+        let facts = match &sample.data {
             Some(Data::EncodedImage(bytes)) => match &model.manifest.input.image {
                 Some(prep) => {
                     let started = Instant::now();
-                    let r = prepare_image(bytes, prep, limits, out).map(|_| ());
+                    let r = prepare_image(bytes, prep, limits, out);
                     telemetry::image_prepared(&model.name, started.elapsed());
-                    r
+                    r.map(Some)
                 }
                 None => Err(PrepareError::ImageNotAccepted),
             },
-            Some(Data::Tensor(t)) => prepare_tensor(&t.shape, &t.f32_le, shape, out),
+            Some(Data::Tensor(t)) => prepare_tensor(&t.shape, &t.f32_le, shape, out).map(|()| None),
             None => return Err(ServiceError::EmptySample { index }),
-        };
-        result.map_err(|source| ServiceError::Sample { index, source })?;
+        }
+        .map_err(|source| ServiceError::Sample { index, source })?;
+        if let (Some(monitor), Some(all)) = (&model.drift, stats.as_mut()) {
+            // Only a length mismatch fails, and `out` has the model's input length.
+            if monitor
+                .schema
+                .compute_input(out, facts, &mut all[index])
+                .is_err()
+            {
+                stats = None;
+            }
+        }
     }
-    Ok(inputs)
+    Ok(Prepared {
+        inputs: Arc::new(inputs),
+        stats,
+    })
 }
 
-/// Probabilities (softmax of logits, or the graph's own probabilities), ranked.
-fn outcome(model: &ModelVersion, raw: &[f32], top_k: usize, all_scores: bool) -> api::Outcome {
-    let probs: Vec<f32> = match model.output_kind {
+/// The probability of every class: the softmax of logits, or the graph's own probabilities.
+fn probabilities(model: &ModelVersion, raw: &[f32]) -> Vec<f32> {
+    match model.output_kind {
         OutputKind::Probabilities => raw.to_vec(),
         OutputKind::Logits => softmax(raw),
-    };
+    }
+}
+
+/// Probabilities, ranked.
+fn outcome(model: &ModelVersion, probs: Vec<f32>, top_k: usize, all_scores: bool) -> api::Outcome {
     let mut order: Vec<usize> = (0..probs.len()).collect();
     // Highest first; ties keep class order. NaN (which only a NaN input can produce) sorts last.
     order.sort_by(|&a, &b| {
@@ -411,6 +526,23 @@ impl Predictor for PredictorService {
         _request: Request<api::CatalogRequest>,
     ) -> Result<Response<api::CatalogReply>, Status> {
         Ok(Response::new(self.shared.catalog()))
+    }
+
+    async fn drift(
+        &self,
+        request: Request<api::DriftRequest>,
+    ) -> Result<Response<api::DriftReply>, Status> {
+        let model = self
+            .shared
+            .registry
+            .resolve(&request.into_inner().model, "")
+            .map_err(ServiceError::from)?;
+        let alpha = self.shared.drift_alpha;
+        // The tests sort the window and may run exact KS distributions: CPU work.
+        let reply = tokio::task::spawn_blocking(move || drift_reply(&model, alpha))
+            .await
+            .map_err(|e| ServiceError::Internal(format!("drift report task failed: {e}")))??;
+        Ok(Response::new(reply))
     }
 }
 

@@ -135,7 +135,10 @@ async fn answer(mut stream: TcpStream, handle: &PrometheusHandle) -> std::io::Re
         Err(_) => return Ok(()),
     };
     let response = match head {
-        Head::Complete(bytes) => respond(&bytes, || handle.render()),
+        Head::Complete(bytes) => respond(&bytes, || {
+            super::drift::refresh();
+            handle.render()
+        }),
         Head::TooLarge => plain(
             431,
             "Request Header Fields Too Large",

@@ -43,6 +43,31 @@ pub const MODEL_SWAP_SECONDS: &str = "convoy_model_swap_seconds";
 /// Requests refused before compute. Labels: model, version, reason.
 pub const REQUESTS_SHED_TOTAL: &str = "convoy_requests_shed_total";
 
+/// Samples recorded for drift monitoring. Counter; labels: model, version.
+pub const DRIFT_SAMPLES_TOTAL: &str = "convoy_drift_samples_total";
+/// Values of a statistic per reference bin (equal-mass bins of the bundle's reference, so each
+/// bin's share should stay near 1/bins). Counter; labels: model, version, statistic, bin.
+pub const DRIFT_VALUES_TOTAL: &str = "convoy_drift_values_total";
+/// Values of a statistic outside the reference's [min, max]. Counter; labels: model, version,
+/// statistic.
+pub const DRIFT_OUT_OF_RANGE_TOTAL: &str = "convoy_drift_out_of_range_total";
+/// Samples whose statistic was NaN or infinite (non-finite input values). Counter; labels:
+/// model, version, statistic.
+pub const DRIFT_NON_FINITE_TOTAL: &str = "convoy_drift_non_finite_total";
+/// Predictions per class index. Counter; labels: model, version, class.
+pub const DRIFT_PREDICTIONS_TOTAL: &str = "convoy_drift_predictions_total";
+/// Population stability index of the window against the reference. Gauge; labels: model,
+/// version, statistic (`predicted_class` for the class distribution).
+pub const DRIFT_PSI: &str = "convoy_drift_psi";
+/// p-value of the window's test: two-sample KS per statistic, chi-square for
+/// `predicted_class`. Gauge; labels: model, version, statistic.
+pub const DRIFT_KS_P_VALUE: &str = "convoy_drift_p_value";
+/// Verdict of the window: -1 too few samples, 0 stable, 1 moderate, 2 drift. Gauge; labels:
+/// model, version, statistic.
+pub const DRIFT_VERDICT: &str = "convoy_drift_verdict";
+/// Samples in the drift window now. Gauge; labels: model, version.
+pub const DRIFT_WINDOW_SAMPLES: &str = "convoy_drift_window_samples";
+
 /// Shed reason: the model version's queue had no room for the request's samples.
 pub const SHED_QUEUE_FULL: &str = "queue_full";
 /// Shed reason: the request's deadline passed before its samples were computed.
@@ -148,6 +173,40 @@ pub(crate) fn describe_all() {
         MODEL_LOADS_TOTAL,
         "Model version loads, by outcome (ok, or the step that refused the bundle: read, verify, plan, check_samples, warm_up, conflict)."
     );
+    describe_counter!(
+        DRIFT_SAMPLES_TOTAL,
+        "Samples recorded for drift monitoring, by model and version."
+    );
+    describe_counter!(
+        DRIFT_VALUES_TOTAL,
+        "Values of each drift statistic per bin of the bundle's reference (equal-mass bins: each bin's share should stay near 1/bins)."
+    );
+    describe_counter!(
+        DRIFT_OUT_OF_RANGE_TOTAL,
+        "Values of each drift statistic outside the reference's observed range."
+    );
+    describe_counter!(
+        DRIFT_NON_FINITE_TOTAL,
+        "Samples whose drift statistic was NaN or infinite."
+    );
+    describe_counter!(DRIFT_PREDICTIONS_TOTAL, "Predictions per class index.");
+    describe_gauge!(
+        DRIFT_PSI,
+        "Population stability index of the drift window against the reference, per statistic (predicted_class: the class distribution)."
+    );
+    describe_gauge!(
+        DRIFT_KS_P_VALUE,
+        "p-value of the drift window's test: two-sample KS per statistic, chi-square for predicted_class."
+    );
+    describe_gauge!(
+        DRIFT_VERDICT,
+        "Drift verdict of the window: -1 too few samples, 0 stable, 1 moderate, 2 drift."
+    );
+    describe_gauge!(
+        DRIFT_WINDOW_SAMPLES,
+        Unit::Count,
+        "Samples in the drift window now."
+    );
     describe_histogram!(
         MODEL_SWAP_SECONDS,
         Unit::Seconds,
@@ -197,6 +256,15 @@ mod tests {
             MODEL_ACTIVE_VERSION,
             MODEL_SWAP_SECONDS,
             REQUESTS_SHED_TOTAL,
+            DRIFT_SAMPLES_TOTAL,
+            DRIFT_VALUES_TOTAL,
+            DRIFT_OUT_OF_RANGE_TOTAL,
+            DRIFT_NON_FINITE_TOTAL,
+            DRIFT_PREDICTIONS_TOTAL,
+            DRIFT_PSI,
+            DRIFT_KS_P_VALUE,
+            DRIFT_VERDICT,
+            DRIFT_WINDOW_SAMPLES,
         ];
         for name in all {
             assert!(name.starts_with("convoy_"), "{name}");

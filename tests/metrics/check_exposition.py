@@ -37,6 +37,16 @@ FAMILIES = [
     ("convoy_model_loads_total", "counter", {"model", "outcome"}),
     ("convoy_model_active_version", "gauge", {"model", "version"}),
     ("convoy_model_swap_seconds", "histogram", {"model"}),
+    # The demo's bundle carries a drift reference, so its drift series are on the page.
+    ("convoy_drift_samples_total", "counter", {"model", "version"}),
+    ("convoy_drift_values_total", "counter", {"model", "version", "statistic", "bin"}),
+    ("convoy_drift_out_of_range_total", "counter", {"model", "version", "statistic"}),
+    ("convoy_drift_non_finite_total", "counter", {"model", "version", "statistic"}),
+    ("convoy_drift_predictions_total", "counter", {"model", "version", "class"}),
+    ("convoy_drift_psi", "gauge", {"model", "version", "statistic"}),
+    ("convoy_drift_p_value", "gauge", {"model", "version", "statistic"}),
+    ("convoy_drift_verdict", "gauge", {"model", "version", "statistic"}),
+    ("convoy_drift_window_samples", "gauge", {"model", "version"}),
     ("convoy_requests_shed_total", "counter", {"model", "version", "reason"}),
 ]
 
