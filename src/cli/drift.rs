@@ -36,32 +36,14 @@ pub struct DriftArgs {
 /// # Errors
 /// An unreachable server, a refused call, an SVG file that cannot be written.
 pub fn drift(args: &DriftArgs) -> Result<(), CliError> {
-    let endpoint = if args.server.contains("://") {
-        args.server.clone()
-    } else {
-        format!("http://{}", args.server)
-    };
-    let runtime = tokio::runtime::Builder::new_current_thread()
-        .enable_all()
-        .build()
-        .map_err(CliError::Runtime)?;
-    let reply = runtime.block_on(async {
-        let mut client = PredictorClient::connect(endpoint.clone())
-            .await
-            .map_err(|e| CliError::Connect {
-                server: endpoint.clone(),
-                reason: e.to_string(),
-            })?;
-        client
+    let reply = super::block_on(async {
+        PredictorClient::new(super::connect(&args.server).await?)
             .drift(api::DriftRequest {
                 model: args.model.clone(),
             })
             .await
             .map(tonic::Response::into_inner)
-            .map_err(|s| CliError::Rpc {
-                code: crate::telemetry::code_name(s.code()).to_string(),
-                message: s.message().to_string(),
-            })
+            .map_err(|s| super::rpc_error(&s))
     })?;
     if args.json {
         super::print_json(&DriftJson::from(&reply))?;

@@ -133,6 +133,47 @@ pub(crate) fn with_commas(n: u64) -> String {
     out
 }
 
+/// A channel to a convoy server at `addr` (`host:port`, or a URL with its scheme).
+///
+/// # Errors
+/// [`CliError::Connect`] when the address is not usable or nothing answers there.
+pub(crate) async fn connect(addr: &str) -> Result<tonic::transport::Channel, CliError> {
+    let url = if addr.contains("://") {
+        addr.to_string()
+    } else {
+        format!("http://{addr}")
+    };
+    let failed = |reason: String| CliError::Connect {
+        server: url.clone(),
+        reason,
+    };
+    tonic::transport::Channel::from_shared(url.clone())
+        .map_err(|e| failed(e.to_string()))?
+        .connect()
+        .await
+        .map_err(|e| failed(e.to_string()))
+}
+
+/// A server's refusal, with the status code spelled as the gRPC specification spells it.
+pub(crate) fn rpc_error(status: &tonic::Status) -> CliError {
+    CliError::Rpc {
+        code: crate::telemetry::code_name(status.code()).to_string(),
+        message: status.message().to_string(),
+    }
+}
+
+/// Runs a client command's future on a runtime of its own (one thread: a client waits on
+/// the network, it does not compute).
+pub(crate) fn block_on<T>(
+    work: impl std::future::Future<Output = Result<T, CliError>>,
+) -> Result<T, CliError> {
+    tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .map_err(CliError::Runtime)?
+        .block_on(work)
+}
+
 /// Prints `value` as pretty JSON and a newline.
 pub(crate) fn print_json<T: serde::Serialize>(value: &T) -> Result<(), CliError> {
     // Plain data (strings, numbers, lists): serialising it cannot fail.

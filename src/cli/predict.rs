@@ -101,22 +101,8 @@ pub fn predict(args: &PredictArgs) -> Result<(), CliError> {
         }
         samples.extend(s);
     }
-    let endpoint = if args.server.contains("://") {
-        args.server.clone()
-    } else {
-        format!("http://{}", args.server)
-    };
-    let runtime = tokio::runtime::Builder::new_current_thread()
-        .enable_all()
-        .build()
-        .map_err(CliError::Runtime)?;
-    let reply = runtime.block_on(async {
-        let mut client = PredictorClient::connect(endpoint.clone())
-            .await
-            .map_err(|e| CliError::Connect {
-                server: endpoint.clone(),
-                reason: e.to_string(),
-            })?
+    let reply = super::block_on(async {
+        let mut client = PredictorClient::new(super::connect(&args.server).await?)
             .max_decoding_message_size(64 << 20)
             .max_encoding_message_size(64 << 20);
         client
@@ -130,10 +116,7 @@ pub fn predict(args: &PredictArgs) -> Result<(), CliError> {
             })
             .await
             .map(tonic::Response::into_inner)
-            .map_err(|s| CliError::Rpc {
-                code: crate::telemetry::code_name(s.code()).to_string(),
-                message: s.message().to_string(),
-            })
+            .map_err(|s| super::rpc_error(&s))
     })?;
     let timing = reply.timing.unwrap_or_default();
     let report = Report {

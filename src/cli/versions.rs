@@ -7,7 +7,6 @@
 use std::path::PathBuf;
 
 use serde::Serialize;
-use tonic::transport::Channel;
 
 use super::CliError;
 use crate::service::api::control::{self as pb, control_client::ControlClient};
@@ -75,36 +74,6 @@ pub enum Action {
     },
 }
 
-fn endpoint(addr: &str) -> String {
-    if addr.contains("://") {
-        addr.to_string()
-    } else {
-        format!("http://{addr}")
-    }
-}
-
-fn rpc_error(s: &tonic::Status) -> CliError {
-    CliError::Rpc {
-        code: crate::telemetry::code_name(s.code()).to_string(),
-        message: s.message().to_string(),
-    }
-}
-
-async fn channel(addr: &str) -> Result<Channel, CliError> {
-    let url = endpoint(addr);
-    Channel::from_shared(url.clone())
-        .map_err(|e| CliError::Connect {
-            server: url.clone(),
-            reason: e.to_string(),
-        })?
-        .connect()
-        .await
-        .map_err(|e| CliError::Connect {
-            server: url,
-            reason: e.to_string(),
-        })
-}
-
 fn token(target: &ControlTarget) -> Result<String, CliError> {
     if let Some(path) = &target.token_file {
         let text = std::fs::read_to_string(path).map_err(|source| CliError::File {
@@ -126,11 +95,7 @@ fn token(target: &ControlTarget) -> Result<String, CliError> {
 /// # Errors
 /// Unreachable server, a refused call, a missing token.
 pub fn versions(args: &VersionsArgs) -> Result<(), CliError> {
-    let runtime = tokio::runtime::Builder::new_current_thread()
-        .enable_all()
-        .build()
-        .map_err(CliError::Runtime)?;
-    runtime.block_on(async {
+    super::block_on(async {
         match &args.action {
             Action::List { server } => list(server, args.json).await,
             action => {
@@ -159,7 +124,7 @@ async fn control_call(action: &Action) -> Result<pb::ChangeReport, CliError> {
             .parse()
             .map_err(|_| CliError::Usage("the control token must be printable ASCII".into()))?;
     let mut client = ControlClient::with_interceptor(
-        channel(&target.control).await?,
+        super::connect(&target.control).await?,
         move |mut req: tonic::Request<()>| {
             req.metadata_mut().insert("authorization", bearer.clone());
             Ok(req)
@@ -205,7 +170,7 @@ async fn control_call(action: &Action) -> Result<pb::ChangeReport, CliError> {
     };
     reply
         .map(tonic::Response::into_inner)
-        .map_err(|s| rpc_error(&s))
+        .map_err(|s| super::rpc_error(&s))
 }
 
 #[derive(Serialize)]
@@ -328,11 +293,11 @@ pub fn report_text(r: &pb::ChangeReport) -> String {
 }
 
 async fn list(server: &str, json: bool) -> Result<(), CliError> {
-    let mut client = PredictorClient::new(channel(server).await?);
+    let mut client = PredictorClient::new(super::connect(server).await?);
     let cat = client
         .catalog(api::CatalogRequest {})
         .await
-        .map_err(|s| rpc_error(&s))?
+        .map_err(|s| super::rpc_error(&s))?
         .into_inner();
     if json {
         #[derive(Serialize)]

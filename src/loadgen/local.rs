@@ -65,6 +65,11 @@ pub struct LocalReport {
     pub results: Vec<LocalResult>,
     pub best_images_per_s: f64,
     pub best_batch: usize,
+    /// Opening the bundle (read, verify) and planning it, in milliseconds.
+    pub load_ms: f64,
+    /// Peak resident memory of the whole process at the end, in MiB (Linux only): run one batch
+    /// size at a time to attribute it.
+    pub peak_rss_mb: Option<f64>,
 }
 
 impl LocalConfig {
@@ -104,6 +109,7 @@ pub fn run_local(
     mut on_batch: impl FnMut(usize, usize, usize),
 ) -> Result<LocalReport, LoadgenError> {
     config.validate()?;
+    let loading = Instant::now();
     let bundle = Bundle::open(&config.bundle)?;
     let engine = Engine::new(
         &bundle,
@@ -113,6 +119,7 @@ pub fn run_local(
             ..EngineConfig::default()
         },
     )?;
+    let load_ms = loading.elapsed().as_secs_f64() * 1e3;
     let (in_len, out_len) = (engine.plan().input_len(), engine.plan().output_len());
     let largest = config.batches.iter().copied().max().unwrap_or(1);
     let mut rng = SplitMix64(config.seed);
@@ -171,7 +178,18 @@ pub fn run_local(
         results,
         best_images_per_s: best.0,
         best_batch: best.1,
+        load_ms,
+        peak_rss_mb: peak_rss_mb(),
     })
+}
+
+/// The process's peak resident memory so far, in MiB (Linux: `VmHWM` of /proc/self/status,
+/// see proc(5)); `None` elsewhere.
+fn peak_rss_mb() -> Option<f64> {
+    let status = std::fs::read_to_string("/proc/self/status").ok()?;
+    let line = status.lines().find(|l| l.starts_with("VmHWM:"))?;
+    let kib: f64 = line.split_whitespace().nth(1)?.parse().ok()?;
+    Some(kib / 1024.0)
 }
 
 impl LocalReport {
@@ -218,6 +236,11 @@ impl LocalReport {
             number(self.best_images_per_s),
             self.best_batch
         );
+        let _ = write!(s, "load (read, verify, plan): {} ms", number(self.load_ms));
+        if let Some(mb) = self.peak_rss_mb {
+            let _ = write!(s, "; peak resident memory {} MiB", number(mb));
+        }
+        let _ = writeln!(s);
         s
     }
 }

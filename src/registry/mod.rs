@@ -403,12 +403,14 @@ impl Registry {
         touched
     }
 
-    /// Holds `version` active (`Some`) or lets the model follow its highest version again
-    /// (`None`). The caller then settles the model.
-    ///
-    /// # Errors
-    /// Unknown model, or a version the registry knows nothing of.
-    pub fn pin(&self, name: &str, version: Option<&str>) -> Result<(), LookupError> {
+    /// Runs `change` on the slot of `name` and, when `version` is given, checks that the
+    /// registry knows that version first.
+    fn change_slot(
+        &self,
+        name: &str,
+        version: Option<&str>,
+        change: impl FnOnce(&mut ModelSlot),
+    ) -> Result<(), LookupError> {
         let mut models = self.write();
         let available = Self::available(&models);
         let slot = models
@@ -417,19 +419,31 @@ impl Registry {
                 name: name.to_string(),
                 available,
             })?;
-        if let Some(version) = version {
-            let known = slot.versions.iter().map(|v| v.version.clone()).collect();
-            let v = slot
-                .get_mut(version)
-                .ok_or_else(|| LookupError::UnknownVersion {
-                    name: name.to_string(),
-                    version: version.to_string(),
-                    available: join(known),
-                })?;
-            v.held_back = false;
+        if let Some(version) = version
+            && slot.get(version).is_none()
+        {
+            return Err(LookupError::UnknownVersion {
+                name: name.to_string(),
+                version: version.to_string(),
+                available: join(slot.versions.iter().map(|v| v.version.clone()).collect()),
+            });
         }
-        slot.pinned = version.map(str::to_string);
+        change(slot);
         Ok(())
+    }
+
+    /// Holds `version` active (`Some`) or lets the model follow its highest version again
+    /// (`None`). The caller then settles the model.
+    ///
+    /// # Errors
+    /// Unknown model, or a version the registry knows nothing of.
+    pub fn pin(&self, name: &str, version: Option<&str>) -> Result<(), LookupError> {
+        self.change_slot(name, version, |slot| {
+            if let Some(v) = version.and_then(|v| slot.get_mut(v)) {
+                v.held_back = false;
+            }
+            slot.pinned = version.map(str::to_string);
+        })
     }
 
     /// An operator takes `version` out of service (`held`): it is not chosen automatically
@@ -440,27 +454,14 @@ impl Registry {
     /// # Errors
     /// Unknown model or version.
     pub fn set_held_back(&self, name: &str, version: &str, held: bool) -> Result<(), LookupError> {
-        let mut models = self.write();
-        let available = Self::available(&models);
-        let slot = models
-            .get_mut(name)
-            .ok_or_else(|| LookupError::UnknownModel {
-                name: name.to_string(),
-                available,
-            })?;
-        let known = join(slot.versions.iter().map(|v| v.version.clone()).collect());
-        let v = slot
-            .get_mut(version)
-            .ok_or_else(|| LookupError::UnknownVersion {
-                name: name.to_string(),
-                version: version.to_string(),
-                available: known,
-            })?;
-        v.held_back = held;
-        if held && slot.pinned.as_deref() == Some(version) {
-            slot.pinned = None;
-        }
-        Ok(())
+        self.change_slot(name, Some(version), |slot| {
+            if let Some(v) = slot.get_mut(version) {
+                v.held_back = held;
+            }
+            if held && slot.pinned.as_deref() == Some(version) {
+                slot.pinned = None;
+            }
+        })
     }
 
     /// What the policy wants active for `name` now.
