@@ -5,6 +5,28 @@
 //! instruction set this CPU supports is measured, or only the one `CONVOY_ISA` forces.
 //!
 //! Run: `cargo bench --bench kernels` (add a filter such as `-- avx512` to narrow it).
+//!
+//! Groups and ids (stable: scripts read `target/criterion/<group>/<id>/new/estimates.json`):
+//! - `gemm/<case>/<isa>`, `depthwise/<case>/<isa>`: single calls over shapes of several
+//!   networks.
+//! - `fma_peak/<isa>`: one batch of the register-resident multiply-add loop of
+//!   `kernels::peak` (throughput = its FLOPs): the machine's single-core peak, measured in the
+//!   same run as the convolutions it is compared with.
+//! - `resnet20_conv3x3_b32/<layer>/<isa>`: every distinct 3x3 convolution of ResNet-20 at
+//!   32x32 input (He et al., "Deep Residual Learning for Image Recognition", CVPR 2016, §4.2:
+//!   a 3x3 stem to 16 channels, then stages of 16, 32 and 64 channels at 32x32, 16x16 and 8x8,
+//!   the first 3x3 of stages 2 and 3 with stride 2), run for a batch of 32 exactly as the
+//!   executor runs a convolution (one GEMM call per sample over the implicit im2col of its
+//!   input, bias and ReLU fused). `<isa>` takes the default im2col route; `<isa>_packed`
+//!   forces the packed route, for comparison in the same run. Throughput is the convolution's
+//!   FLOPs (2 per multiply-add, padding taps included as the GEMM computes them).
+//!
+//! Before the criterion groups, a short summary is printed to stderr: the measured peak and,
+//! per ResNet-20 layer and instruction set, GFLOP/s and the fraction of that peak (fastest of
+//! a few repetitions, like the peak's fastest slice; criterion's estimates are the record),
+//! then the network's aggregate: all its 3x3 convolutions' FLOPs (stem, 6 at stage 1, the
+//! strided first of stage 2 and 5 more, the same at stage 3) over their summed times. After
+//! the ResNet-20 group the same aggregate is printed from criterion's mean per layer.
 
 use std::hint::black_box;
 use std::time::Duration;
@@ -12,9 +34,10 @@ use std::time::Duration;
 use convoy::engine::kernels::activation::Activation;
 use convoy::engine::kernels::depthwise::{PackedDepthwise, depthwise};
 use convoy::engine::kernels::gemm::{
-    BSource, ConvGeom, Epilogue, GemmScratch, PackedWeights, gemm,
+    BSource, ConvGeom, Epilogue, GemmScratch, Im2colAlgo, PackedWeights, gemm,
 };
 use convoy::engine::kernels::isa::{ISA_VARIABLE, Isa};
+use convoy::engine::kernels::peak::{fma_batch, fma_peak};
 use criterion::{BenchmarkId, Criterion, Throughput, criterion_group, criterion_main};
 
 fn isas() -> Vec<Isa> {
@@ -229,12 +252,269 @@ fn bench_depthwise(c: &mut Criterion) {
     group.finish();
 }
 
+fn bench_fma_peak(c: &mut Criterion) {
+    let mut group = c.benchmark_group("fma_peak");
+    for isa in isas() {
+        let (_, flops) = fma_batch(isa);
+        group.throughput(Throughput::Elements(flops));
+        group.bench_function(isa.name(), |bench| {
+            bench.iter(|| black_box(fma_batch(black_box(isa))))
+        });
+    }
+    group.finish();
+}
+
+/// Batch size of the ResNet-20 group.
+const BATCH: usize = 32;
+
+/// One 3x3 convolution of ResNet-20: id, input channels, output channels, input size, stride,
+/// and how many times the network runs it.
+struct Layer {
+    id: &'static str,
+    count: usize,
+    in_c: usize,
+    out_c: usize,
+    hw: usize,
+    stride: usize,
+}
+
+/// The distinct 3x3 convolutions of ResNet-20 on 32x32 images (He et al. 2016, §4.2: n = 3
+/// blocks of two 3x3 convolutions per stage, the first of stages 2 and 3 strided).
+const RESNET20_3X3: [Layer; 6] = [
+    Layer {
+        id: "stem_3to16_32x32",
+        count: 1,
+        in_c: 3,
+        out_c: 16,
+        hw: 32,
+        stride: 1,
+    },
+    Layer {
+        id: "stage1_16to16_32x32",
+        count: 6,
+        in_c: 16,
+        out_c: 16,
+        hw: 32,
+        stride: 1,
+    },
+    Layer {
+        id: "stage2_first_16to32_32x32_s2",
+        count: 1,
+        in_c: 16,
+        out_c: 32,
+        hw: 32,
+        stride: 2,
+    },
+    Layer {
+        id: "stage2_32to32_16x16",
+        count: 5,
+        in_c: 32,
+        out_c: 32,
+        hw: 16,
+        stride: 1,
+    },
+    Layer {
+        id: "stage3_first_32to64_16x16_s2",
+        count: 1,
+        in_c: 32,
+        out_c: 64,
+        hw: 16,
+        stride: 2,
+    },
+    Layer {
+        id: "stage3_64to64_8x8",
+        count: 5,
+        in_c: 64,
+        out_c: 64,
+        hw: 8,
+        stride: 1,
+    },
+];
+
+/// One layer's operands for a batch, and the executor's per-sample loop over them.
+struct ConvBatch {
+    g: ConvGeom,
+    weights: PackedWeights,
+    input: Vec<f32>,
+    bias: Vec<f32>,
+    out: Vec<f32>,
+    scratch: GemmScratch,
+}
+
+impl ConvBatch {
+    fn new(layer: &Layer, isa: Isa, algo: Im2colAlgo) -> ConvBatch {
+        let g = conv(layer.in_c, layer.hw, 3, layer.stride);
+        let k = layer.in_c * 9;
+        ConvBatch {
+            g,
+            weights: PackedWeights::pack(isa, &data(layer.out_c * k, 7), layer.out_c, k),
+            input: data(BATCH * layer.in_c * layer.hw * layer.hw, 8),
+            bias: data(layer.out_c, 9),
+            out: vec![0.0; BATCH * layer.out_c * g.out_h * g.out_w],
+            scratch: GemmScratch::with_im2col(algo),
+        }
+    }
+
+    fn flops(&self) -> u64 {
+        let (m, k) = (self.weights.m(), self.weights.k());
+        (2 * m * k * self.g.out_h * self.g.out_w * BATCH) as u64
+    }
+
+    /// As `run_conv` in the executor: one GEMM per sample, bias and ReLU fused.
+    fn run(&mut self) {
+        let n = self.g.out_h * self.g.out_w;
+        let in_len = self.g.in_c * self.g.in_h * self.g.in_w;
+        let out_len = self.weights.m() * n;
+        let epi = Epilogue {
+            bias: Some(&self.bias),
+            residual: None,
+            act: Activation::Relu,
+        };
+        for s in 0..BATCH {
+            let b = BSource::Im2col {
+                input: &self.input[s * in_len..][..in_len],
+                geom: self.g,
+                c0: 0,
+            };
+            gemm(
+                &self.weights,
+                &b,
+                n,
+                0..n,
+                &mut self.out[s * out_len..][..out_len],
+                n,
+                &epi,
+                &mut self.scratch,
+            );
+        }
+        black_box(&self.out);
+    }
+}
+
+/// Network-weighted throughput of the 3x3 convolutions: every layer's FLOPs times its count,
+/// over its time per batch times its count (`secs` in the order of [`RESNET20_3X3`]).
+fn aggregate_gflops(secs: &[f64]) -> f64 {
+    let (mut flops, mut time) = (0.0, 0.0);
+    for (layer, &t) in RESNET20_3X3.iter().zip(secs) {
+        let g = conv(layer.in_c, layer.hw, 3, layer.stride);
+        let f = (2 * layer.out_c * layer.in_c * 9 * g.out_h * g.out_w * BATCH) as f64;
+        flops += f * layer.count as f64;
+        time += t * layer.count as f64;
+    }
+    flops / time / 1e9
+}
+
+/// Prints the measured peak and each layer's fraction of it, then the network-weighted
+/// aggregate (see the module documentation); returns the peak per instruction set.
+fn print_peak_summary() -> Vec<(Isa, f64)> {
+    let mut peaks = Vec::new();
+    for isa in isas() {
+        let peak = fma_peak(isa, Duration::from_millis(400));
+        eprintln!(
+            "fma_peak {isa}: {:.1} GFLOP/s (fastest slice; {:.1} average)",
+            peak.gflops, peak.mean_gflops
+        );
+        for (algo, suffix) in [(Im2colAlgo::Auto, ""), (Im2colAlgo::Packed, "_packed")] {
+            let mut secs = Vec::new();
+            for layer in &RESNET20_3X3 {
+                let mut conv = ConvBatch::new(layer, isa, algo);
+                conv.run();
+                let best = (0..5)
+                    .map(|_| {
+                        let t = std::time::Instant::now();
+                        conv.run();
+                        t.elapsed().as_secs_f64()
+                    })
+                    .fold(f64::INFINITY, f64::min);
+                secs.push(best);
+                let gflops = conv.flops() as f64 / best / 1e9;
+                eprintln!(
+                    "  {:<30} {:<14} {gflops:7.1} GFLOP/s  {:5.1} % of peak",
+                    layer.id,
+                    format!("{isa}{suffix}"),
+                    100.0 * gflops / peak.gflops
+                );
+            }
+            let agg = aggregate_gflops(&secs);
+            eprintln!(
+                "  {:<30} {:<14} {agg:7.1} GFLOP/s  {:5.1} % of peak",
+                "resnet20 3x3 aggregate",
+                format!("{isa}{suffix}"),
+                100.0 * agg / peak.gflops
+            );
+        }
+        peaks.push((isa, peak.gflops));
+    }
+    peaks
+}
+
+/// Criterion's mean time per iteration of one benchmark, in seconds, from the estimates it
+/// has just written (`target/criterion/<group>/<id>/new/estimates.json`); `None` if absent.
+fn criterion_mean_secs(group: &str, layer: &str, id: &str) -> Option<f64> {
+    let dir = std::env::var("CARGO_TARGET_DIR").unwrap_or_else(|_| "target".into());
+    let path = format!("{dir}/criterion/{group}/{layer}/{id}/new/estimates.json");
+    let text = std::fs::read_to_string(path).ok()?;
+    let v: serde_json::Value = serde_json::from_str(&text).ok()?;
+    Some(v["mean"]["point_estimate"].as_f64()? / 1e9)
+}
+
+/// The aggregate again, from criterion's per-layer results (the record), for every route
+/// whose layers were all measured in this run (`measured`: layer and id pairs).
+fn print_criterion_aggregate(peaks: &[(Isa, f64)], measured: &[(&str, String)]) {
+    for &(isa, peak) in peaks {
+        for suffix in ["", "_packed"] {
+            let id = format!("{isa}{suffix}");
+            let secs: Option<Vec<f64>> = RESNET20_3X3
+                .iter()
+                .map(|l| {
+                    let ran = measured.iter().any(|(m, i)| *m == l.id && *i == id);
+                    ran.then(|| criterion_mean_secs("resnet20_conv3x3_b32", l.id, &id))
+                        .flatten()
+                })
+                .collect();
+            if let Some(secs) = secs {
+                let agg = aggregate_gflops(&secs);
+                eprintln!(
+                    "criterion resnet20 3x3 aggregate {id:<14} {agg:7.1} GFLOP/s  {:5.1} % of peak",
+                    100.0 * agg / peak
+                );
+            }
+        }
+    }
+}
+
+fn bench_resnet20(c: &mut Criterion) {
+    let peaks = print_peak_summary();
+    // (layer, id) pairs criterion measured in this run (not filtered out).
+    let mut measured = Vec::new();
+    let mut group = c.benchmark_group("resnet20_conv3x3_b32");
+    for layer in &RESNET20_3X3 {
+        for isa in isas() {
+            for (algo, suffix) in [(Im2colAlgo::Auto, ""), (Im2colAlgo::Packed, "_packed")] {
+                let mut conv = ConvBatch::new(layer, isa, algo);
+                group.throughput(Throughput::Elements(conv.flops()));
+                let id = BenchmarkId::new(layer.id, format!("{isa}{suffix}"));
+                let mut ran = false;
+                group.bench_function(id, |bench| {
+                    ran = true;
+                    bench.iter(|| conv.run())
+                });
+                if ran {
+                    measured.push((layer.id, format!("{isa}{suffix}")));
+                }
+            }
+        }
+    }
+    group.finish();
+    print_criterion_aggregate(&peaks, &measured);
+}
+
 criterion_group! {
     name = benches;
     config = Criterion::default()
         .sample_size(20)
         .warm_up_time(Duration::from_millis(300))
         .measurement_time(Duration::from_secs(1));
-    targets = bench_gemm, bench_depthwise
+    targets = bench_gemm, bench_depthwise, bench_fma_peak, bench_resnet20
 }
 criterion_main!(benches);

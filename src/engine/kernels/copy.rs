@@ -41,21 +41,40 @@ pub(crate) fn copy_short(dst: &mut [f32], src: &[f32]) {
 }
 
 /// `dst[t] = src[2t]` (stride-2 convolutions), in fixed-size chunks the compiler turns into
-/// vector shuffles. `src.len() == 2 * dst.len() - 1`.
+/// vector shuffles; like [`copy_short`], a ragged end is one more chunk overlapping the
+/// previous one (rows of 15 outputs are common: a stride-2 phase of a 32-wide row with its
+/// first column in the padding). `src.len() == 2 * dst.len() - 1`.
 #[inline(always)]
 pub(crate) fn copy_even(dst: &mut [f32], src: &[f32]) {
-    let mut chunks = dst.chunks_exact_mut(16);
-    let mut at = 0;
-    for chunk in &mut chunks {
-        // A constant-length window: the compiler drops the bounds checks below.
-        let s = &src[at..at + 31];
-        for (t, d) in chunk.iter_mut().enumerate() {
+    /// `dst[at..at + N] = src[2at..] step 2`, with a constant-length window so the compiler
+    /// drops the bounds checks and vectorises.
+    #[inline(always)]
+    fn chunk<const N: usize>(dst: &mut [f32], src: &[f32], at: usize) {
+        let s = &src[2 * at..][..2 * N - 1];
+        for (t, d) in dst[at..at + N].iter_mut().enumerate() {
             *d = s[2 * t];
         }
-        at += 32;
     }
-    for (t, d) in chunks.into_remainder().iter_mut().enumerate() {
-        *d = src[at + 2 * t];
+    let n = dst.len();
+    let src = &src[..(2 * n).saturating_sub(1)];
+    if n >= 16 {
+        let mut at = 0;
+        while at + 16 <= n {
+            chunk::<16>(dst, src, at);
+            at += 16;
+        }
+        if at < n {
+            chunk::<16>(dst, src, n - 16);
+        }
+    } else if n >= 8 {
+        chunk::<8>(dst, src, 0);
+        if n > 8 {
+            chunk::<8>(dst, src, n - 8);
+        }
+    } else {
+        for (t, d) in dst.iter_mut().enumerate() {
+            *d = src[2 * t];
+        }
     }
 }
 

@@ -7,12 +7,17 @@
 //! microkernels (`kernel`) over every (A panel, B panel) pair, finishing bias, residual and
 //! cheap activations in registers.
 //!
+//! A convolution's im2col has a second route ([`Im2colAlgo::Direct`], module `direct`): a
+//! zero-padded copy of the input per call (one, or one per kernel column), read by the
+//! microkernels through a per-`k` offset table, with no packed B panels; [`Im2colAlgo::Auto`] picks it where it pays off.
+//!
 //! Batch invariance: every output element is `acc = 0; for k in 0..K { acc = fma(a, b, acc) }`,
 //! then `+ bias`, then `+ residual`, then the activation, whichever kernel, tile, block, column
 //! split or batch size produced it. Vector lanes never exchange values, so padding columns and
 //! rows are harmless. The SIMD paths agree bitwise with each other; [`Isa::Scalar`] rounds the
 //! multiply and the add separately and may differ from them by rounding.
 
+mod direct;
 mod kernel;
 mod pack;
 #[cfg(test)]
@@ -202,6 +207,25 @@ impl Panel {
     }
 }
 
+/// How a convolution's implicit im2col ([`BSource::Im2col`]) reaches the microkernels. Both
+/// routes compute the same bits; they differ only in speed.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Hash)]
+pub enum Im2colAlgo {
+    /// Direct where it pays off, else packed (the default; the rule is `Layout::pays_off` in
+    /// `gemm/direct.rs`, measured: direct whenever it copies at most 2/3 of what the packed
+    /// route would, which holds for 3x3 convolutions at stride 1, and at stride 2 where
+    /// the pitched layout suits the shape (16 outputs per row and up), not for strided 1x1).
+    #[default]
+    Auto,
+    /// Pack B into column panels per block of columns (any geometry; best where the direct
+    /// layout would copy as much, such as strided 1x1 shortcuts).
+    Packed,
+    /// Copy the input into a zero-padded layout (once, or once per kernel column) and read B
+    /// rows from it in place (any geometry; best for small channel counts, where packing
+    /// dominated).
+    Direct,
+}
+
 /// Reusable packing buffers; grows to the largest block seen, then never allocates again.
 #[derive(Default)]
 pub struct GemmScratch {
@@ -209,11 +233,24 @@ pub struct GemmScratch {
     panels: Vec<Panel>,
     /// The im2col packing program of the current panel.
     ops: Vec<pack::Op>,
+    /// The direct route's B row offsets.
+    offs: Vec<u32>,
+    /// The im2col route to take.
+    algo: Im2colAlgo,
 }
 
 impl GemmScratch {
+    /// Scratch that lets [`Im2colAlgo::Auto`] choose the im2col route.
     pub fn new() -> GemmScratch {
         GemmScratch::default()
+    }
+
+    /// Scratch that forces one im2col route (tests and benchmarks compare the two).
+    pub fn with_im2col(algo: Im2colAlgo) -> GemmScratch {
+        GemmScratch {
+            algo,
+            ..GemmScratch::default()
+        }
     }
 }
 
@@ -444,6 +481,20 @@ unsafe fn run<S: Simd, const MR: usize, const NV: usize, const VM: usize, const 
     job: &Job<'_, '_>,
     scratch: &mut GemmScratch,
 ) {
+    if let BSource::Im2col { input, geom, c0 } = *job.b {
+        let channels = job.a.k / (geom.kh * geom.kw);
+        let lay = direct::Layout::new(&geom, channels);
+        let take = match scratch.algo {
+            Im2colAlgo::Auto => lay.pays_off(&geom, channels),
+            Im2colAlgo::Packed => false,
+            Im2colAlgo::Direct => true,
+        };
+        if take {
+            // SAFETY: forwarded from the caller.
+            unsafe { direct::run::<S, MR, NV>(s, job, (input, &geom, c0), &lay, scratch) };
+            return;
+        }
+    }
     let (m, k) = (job.a.m, job.a.k);
     let lanes = S::LANES;
     let nc = block_cols(k, NV * lanes);

@@ -8,6 +8,7 @@ mod copy;
 pub mod depthwise;
 pub mod gemm;
 pub mod isa;
+pub mod peak;
 pub mod pool;
 mod simd;
 #[cfg(test)]

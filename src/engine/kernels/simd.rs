@@ -54,6 +54,12 @@ pub(crate) trait Simd: Copy {
     /// # Safety
     /// `p` must be valid for reading `2*LANES` floats (one more than the last one used).
     unsafe fn load_even(self, p: *const f32) -> Self::V;
+    /// Lane `i` of the result is lane `i + by` of `v` for `i + by < LANES`; the top `by`
+    /// lanes are unspecified. `by < LANES`.
+    fn shift_down(self, v: Self::V, by: usize) -> Self::V;
+    /// Lane `i + by` of the result is lane `i` of `v` for `i + by < LANES`; the low `by`
+    /// lanes are unspecified. `by < LANES`.
+    fn shift_up(self, v: Self::V, by: usize) -> Self::V;
     /// `a*b + c`, fused except on [`Scalar`].
     fn fma(self, a: Self::V, b: Self::V, c: Self::V) -> Self::V;
     /// The scalar twin of [`Simd::fma`], rounding exactly as one lane of it does.
@@ -120,6 +126,14 @@ impl Simd for Scalar {
     unsafe fn load_even(self, p: *const f32) -> f32 {
         // SAFETY: the caller guarantees `p` is readable for two floats; one is used.
         unsafe { p.read_unaligned() }
+    }
+    #[inline(always)]
+    fn shift_down(self, v: f32, _by: usize) -> f32 {
+        v
+    }
+    #[inline(always)]
+    fn shift_up(self, v: f32, _by: usize) -> f32 {
+        v
     }
     #[inline(always)]
     fn fma(self, a: f32, b: f32, c: f32) -> f32 {
@@ -273,6 +287,16 @@ mod tests {
             s.store(out.as_mut_ptr(), s.load_even(xs.as_ptr().add(1)));
             for i in 0..l {
                 assert_eq!(out[i].to_bits(), xs[1 + 2 * i].to_bits());
+            }
+            for by in 0..l {
+                s.store(out.as_mut_ptr(), s.shift_down(a, by));
+                for i in 0..l - by {
+                    assert_eq!(out[i].to_bits(), xs[i + by].to_bits(), "down {by} lane {i}");
+                }
+                s.store(out.as_mut_ptr(), s.shift_up(a, by));
+                for i in 0..l - by {
+                    assert_eq!(out[i + by].to_bits(), xs[i].to_bits(), "up {by} lane {i}");
+                }
             }
         }
     }

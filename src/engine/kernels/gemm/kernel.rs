@@ -44,6 +44,79 @@ impl Out {
             *self.c.add(m * self.ldc + n) = self.act.apply_cheap(x);
         }
     }
+
+    /// The vector epilogue for lanes `from..from + len` of `acc`, which go to row `m`,
+    /// columns `n..n + len`; the same bits as [`Out::finish`] per element.
+    ///
+    /// # Safety
+    /// Those elements must be inside C and the residual, and `m` inside the bias;
+    /// `from + len <= LANES`.
+    #[inline(always)]
+    pub(super) unsafe fn finish_lanes<S: Simd>(
+        &self,
+        s: S,
+        m: usize,
+        n: usize,
+        acc: S::V,
+        (from, len): (usize, usize),
+    ) {
+        // SAFETY: the caller guarantees the row segment and the bias entry exist; partial
+        // loads and stores touch only the first `len` floats.
+        unsafe {
+            let mut x = acc;
+            if !self.bias.is_null() {
+                x = s.add(x, s.splat(*self.bias.add(m)));
+            }
+            if !self.residual.is_null() {
+                let r = s.load_partial(self.residual.add(m * self.ldc + n), len);
+                x = s.add(x, s.shift_up(r, from));
+            }
+            let y = apply_vec(s, self.act, x);
+            let c = self.c.add(m * self.ldc + n);
+            if len == S::LANES {
+                s.store(c, y);
+            } else {
+                s.store_partial(c, s.shift_down(y, from), len);
+            }
+        }
+    }
+}
+
+/// Accumulates an `MR x (NV*LANES)` tile like [`tile`], with B row `k` at `b + offs[k]`
+/// instead of at a fixed stride (the direct convolution route, `super::direct`).
+///
+/// # Safety
+/// `a` must be readable for `k*MR` floats, `offs` for `k` entries, and `b + offs[kk]` for
+/// `NV*LANES` floats for every `kk < k`.
+#[inline(always)]
+pub(super) unsafe fn tile_gather<S: Simd, const MR: usize, const NV: usize>(
+    s: S,
+    k: usize,
+    a: *const f32,
+    b: *const f32,
+    offs: *const u32,
+) -> [[S::V; NV]; MR] {
+    let mut acc = [[s.zero(); NV]; MR];
+    let mut a = a;
+    for kk in 0..k {
+        // SAFETY: `kk < k` entries of `offs`, and that B row (the caller's bounds).
+        let row = unsafe { b.add(*offs.add(kk) as usize) };
+        let mut bv = [s.zero(); NV];
+        for (v, x) in bv.iter_mut().enumerate() {
+            // SAFETY: within this step's B row (the caller's bound).
+            *x = unsafe { s.load(row.add(v * S::LANES)) };
+        }
+        for (r, acc_r) in acc.iter_mut().enumerate() {
+            // SAFETY: within this step's A column (the caller's bound on `a`).
+            let av = s.splat(unsafe { *a.add(r) });
+            for (acc_rv, &bx) in acc_r.iter_mut().zip(&bv) {
+                *acc_rv = s.fma(av, bx, *acc_rv);
+            }
+        }
+        // SAFETY: advancing to the next step stays within (or one past) the A panel.
+        a = unsafe { a.add(MR) };
+    }
+    acc
 }
 
 /// Accumulates an `MR x (NV*LANES)` tile over `k` steps: `a` is an A panel (`MR` values per

@@ -48,9 +48,42 @@ fn dense_b(b: &BSource<'_>, k: usize, n: usize) -> Vec<f32> {
     out
 }
 
-/// Checks `gemm` over `cols` against the f64 reference.
+/// Checks `gemm` over `cols` against the f64 reference, on every im2col route.
 #[allow(clippy::too_many_arguments)]
 fn check(
+    isa: Isa,
+    a: &[f32],
+    shape: (usize, usize, usize),
+    b: &BSource<'_>,
+    cols: Range<usize>,
+    bias: Option<&[f32]>,
+    residual: Option<&[f32]>,
+    act: Activation,
+    what: &str,
+) {
+    let algos: &[Im2colAlgo] = match b {
+        BSource::Im2col { .. } => &[Im2colAlgo::Packed, Im2colAlgo::Direct, Im2colAlgo::Auto],
+        _ => &[Im2colAlgo::Auto],
+    };
+    for &algo in algos {
+        let what = format!("{what} {algo:?}");
+        check_one(
+            isa,
+            a,
+            shape,
+            b,
+            cols.clone(),
+            bias,
+            residual,
+            act,
+            &what,
+            algo,
+        );
+    }
+}
+
+#[allow(clippy::too_many_arguments)]
+fn check_one(
     isa: Isa,
     a: &[f32],
     (m, k, n): (usize, usize, usize),
@@ -60,6 +93,7 @@ fn check(
     residual: Option<&[f32]>,
     act: Activation,
     what: &str,
+    algo: Im2colAlgo,
 ) {
     let ldc = n + 3;
     let pw = PackedWeights::pack(isa, a, m, k);
@@ -78,7 +112,7 @@ fn check(
         &mut c,
         ldc,
         &epi,
-        &mut GemmScratch::new(),
+        &mut GemmScratch::with_im2col(algo),
     );
     let bd = dense_b(b, k, n);
     for mm in 0..m {
@@ -267,6 +301,9 @@ fn conv_cases() -> Vec<Conv> {
         c(1, (32, 32), (3, 3), (1, 1), (1, 1), (1, 1, 1, 1)),
         c(16, (8, 8), (3, 3), (1, 1), (1, 1), (1, 1, 1, 1)),
         c(3, (7, 9), (2, 3), (3, 2), (2, 1), (1, 0, 2, 1)),
+        c(3, (16, 16), (3, 3), (2, 2), (1, 1), (1, 1, 1, 1)), // ResNet-20's stage change
+        c(2, (12, 12), (5, 5), (1, 1), (1, 1), (0, 0, 0, 0)), // unpadded: right edge waste
+        c(8, (16, 20), (3, 3), (1, 1), (1, 1), (1, 1, 1, 1)), // the pitched direct layout
     ]
 }
 
@@ -299,6 +336,18 @@ fn im2col_source_matches_reference() {
                     None,
                     Activation::Relu,
                     "im2col",
+                );
+                let residual = rng.vec(m * (n + 3));
+                check(
+                    isa,
+                    &a,
+                    (m, k, n),
+                    &source,
+                    0..n,
+                    Some(&bias),
+                    Some(&residual),
+                    Activation::Silu,
+                    "im2col residual",
                 );
                 if n > 4 {
                     check(
@@ -622,4 +671,83 @@ fn packed_operands_are_shareable_across_threads() {
     shareable::<crate::engine::kernels::depthwise::PackedDepthwise>();
     fn sendable<T: Send>() {}
     sendable::<GemmScratch>();
+}
+
+#[test]
+fn direct_layout_choice() {
+    // (channels, size, kernel, stride, pad) -> (pitched layout, direct by default). The rules
+    // (`gemm/direct.rs`): the pitched layout where at most 1/16 of its columns are padding
+    // and there are 8 channels or more; else planes, direct when they copy at most 3/4 of the
+    // rows the packed route copies per kernel column (`kh * out_h`): at most 2/3.
+    let cases = [
+        (3, 32, 3, 1, 1, false, true), // pitch 33 but 3 channels; planes: 34 rows against 96
+        (16, 32, 3, 1, 1, true, true), // pitch 33 for 32 outputs
+        (32, 16, 3, 1, 1, true, true), // pitch 17 for 16
+        (64, 8, 3, 1, 1, false, true), // pitch 9 for 8; planes: 10 rows against 24
+        (16, 32, 3, 2, 1, true, true), // pitch 17 for 16 (2 column phases of 17)
+        (32, 16, 3, 2, 1, false, false), // pitch 9 for 8; planes: 2 phases x 9 rows against 24
+        (6, 14, 5, 1, 0, false, true), // pitch 14 for 10; planes: 14 rows against 50
+        (5, 9, 1, 2, 0, false, false), // strided 1x1: the same rows either way
+        (3, 11, 3, 3, 0, false, false), // stride 3 = kernel: 3 phases x 3 rows against 9
+    ];
+    for (c, hw, k, s, p, pitched, direct) in cases {
+        let g = Conv {
+            c,
+            hw: (hw, hw),
+            kernel: (k, k),
+            stride: (s, s),
+            dil: (1, 1),
+            pad: (p, p, p, p),
+        }
+        .geom();
+        let lay = direct::Layout::new(&g, c);
+        assert_eq!(matches!(lay, direct::Layout::Pitched(_)), pitched, "{g:?}");
+        assert_eq!(lay.pays_off(&g, c), direct, "{g:?}");
+    }
+}
+
+#[test]
+fn direct_prepare_matches_the_definition() {
+    // Every offset + linear index of a kept output must read exactly B[k][n] (dense_b, the
+    // definition from the BSource docs).
+    let mut rng = Rng::new(6);
+    for conv in conv_cases() {
+        let g = conv.geom();
+        let c0 = 1;
+        let input = rng.vec((c0 + g.in_c) * g.in_h * g.in_w);
+        let layouts = [
+            direct::Layout::Pitched(direct::pitched::Pitched::new(&g)),
+            direct::Layout::Planes(direct::Planes::new(&g)),
+        ];
+        for lay in layouts {
+            let mut buf = vec![f32::NAN; lay.buffer_len(g.in_c)];
+            lay.prepare(&input, &g, c0, g.in_c, &mut buf);
+            let mut offs = Vec::new();
+            lay.offsets(&g, g.in_c, &mut offs);
+            let (k, n) = (g.in_c * g.kh * g.kw, g.out_h * g.out_w);
+            let bd = dense_b(
+                &BSource::Im2col {
+                    input: &input,
+                    geom: g,
+                    c0,
+                },
+                k,
+                n,
+            );
+            for kk in 0..k {
+                for nn in 0..n {
+                    let got = buf[offs[kk] as usize + lay.lin(&g, nn)];
+                    assert_eq!(
+                        got.to_bits(),
+                        bd[kk * n + nn].to_bits(),
+                        "{lay:?} {g:?} k={kk} n={nn}"
+                    );
+                }
+            }
+            assert!(
+                buf.iter().all(|x| !x.is_nan()),
+                "{lay:?} {g:?}: a cell left unwritten"
+            );
+        }
+    }
 }

@@ -73,6 +73,19 @@ impl Simd for Neon {
         cpu!(vld2q_f32(p).0)
     }
     #[inline(always)]
+    fn shift_down(self, v: float32x4_t, by: usize) -> float32x4_t {
+        // Through memory: only the direct convolution's epilogue uses it, once per run.
+        let mut buf = [0.0f32; 8];
+        cpu!(vst1q_f32(buf.as_mut_ptr(), v));
+        cpu!(vld1q_f32(buf[by.min(4)..].as_ptr()))
+    }
+    #[inline(always)]
+    fn shift_up(self, v: float32x4_t, by: usize) -> float32x4_t {
+        let mut buf = [0.0f32; 8];
+        cpu!(vst1q_f32(buf[by.min(4)..].as_mut_ptr(), v));
+        cpu!(vld1q_f32(buf.as_ptr()))
+    }
+    #[inline(always)]
     fn fma(self, a: float32x4_t, b: float32x4_t, c: float32x4_t) -> float32x4_t {
         cpu!(vfmaq_f32(c, a, b))
     }

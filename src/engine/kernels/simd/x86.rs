@@ -97,6 +97,27 @@ impl Simd for Avx2 {
         })
     }
     #[inline(always)]
+    fn shift_down(self, v: __m256, by: usize) -> __m256 {
+        // `vpermps` uses the low 3 bits of each index: lanes past the top wrap around.
+        cpu!(_mm256_permutevar8x32_ps(
+            v,
+            _mm256_add_epi32(
+                _mm256_setr_epi32(0, 1, 2, 3, 4, 5, 6, 7),
+                _mm256_set1_epi32(by as i32)
+            )
+        ))
+    }
+    #[inline(always)]
+    fn shift_up(self, v: __m256, by: usize) -> __m256 {
+        cpu!(_mm256_permutevar8x32_ps(
+            v,
+            _mm256_sub_epi32(
+                _mm256_setr_epi32(0, 1, 2, 3, 4, 5, 6, 7),
+                _mm256_set1_epi32(by as i32)
+            )
+        ))
+    }
+    #[inline(always)]
     fn fma(self, a: __m256, b: __m256, c: __m256) -> __m256 {
         cpu!(_mm256_fmadd_ps(a, b, c))
     }
@@ -183,6 +204,27 @@ impl Simd for Avx512 {
             let idx = _mm512_setr_epi32(0, 2, 4, 6, 8, 10, 12, 14, 16, 18, 20, 22, 24, 26, 28, 30);
             _mm512_permutex2var_ps(lo, idx, hi)
         })
+    }
+    #[inline(always)]
+    fn shift_down(self, v: __m512, by: usize) -> __m512 {
+        // `vpermps` uses the low 4 bits of each index: lanes past the top wrap around.
+        cpu!(_mm512_permutexvar_ps(
+            _mm512_add_epi32(
+                _mm512_setr_epi32(0, 1, 2, 3, 4, 5, 6, 7, 8, 9, 10, 11, 12, 13, 14, 15),
+                _mm512_set1_epi32(by as i32)
+            ),
+            v
+        ))
+    }
+    #[inline(always)]
+    fn shift_up(self, v: __m512, by: usize) -> __m512 {
+        cpu!(_mm512_permutexvar_ps(
+            _mm512_sub_epi32(
+                _mm512_setr_epi32(0, 1, 2, 3, 4, 5, 6, 7, 8, 9, 10, 11, 12, 13, 14, 15),
+                _mm512_set1_epi32(by as i32)
+            ),
+            v
+        ))
     }
     #[inline(always)]
     fn fma(self, a: __m512, b: __m512, c: __m512) -> __m512 {
