@@ -3,12 +3,17 @@
 //! Every kernel call covers one sample (dense layers: the batch as matrix columns, which the
 //! GEMM computes column by column in a fixed order), so a sample's result never depends on
 //! the batch it rides in.
+//!
+//! Memory: a batch goes through the plan in slices of at most [`Plan::slice_samples`] samples,
+//! so a workspace holds the activations of one slice, not of the whole batch. Batch invariance
+//! makes the slicing invisible in the results.
 
 use super::kernels::gemm::{BSource, Epilogue, GemmScratch, gemm};
 use super::kernels::{depthwise, pool};
 use super::plan::{ConvKind, ConvStep, Plan, StepKind};
 
-/// Buffers for one batch size at a time; grow-only, so a steady load allocates nothing.
+/// Buffers for one slice of a batch at a time (see [`Plan::slice_samples`]); grow-only, so a
+/// steady load allocates nothing.
 #[derive(Default)]
 pub struct Workspace {
     buffers: Vec<Vec<f32>>,
@@ -33,7 +38,25 @@ impl Workspace {
     }
 }
 
+/// Target size, in floats, of a workspace's value buffers (4 MiB, the order of a core's L2
+/// cache). A slice of samples this large keeps a small network's batch together (LeNet at
+/// 28×28 needs about 16 K floats per sample, so 66 samples fit), which lets its dense layers
+/// run as one matrix multiply over the slice; a large network (MobileNetV2 at 224×224, about
+/// 2.1 M floats per sample) runs one sample at a time instead of holding 270 MB for a batch of
+/// 32. Measured with `convoy bench --local` at batch 32 on one thread (2-core AVX-512 server):
+/// MobileNetV2 ran about 15% faster one sample at a time than the whole batch at once (its
+/// activations stay in cache from layer to layer); LeNet lost about 13% one sample at a time
+/// (matrix-vector dense layers) and none at 32; ResNet-20 was flat.
+const WORKSPACE_FLOATS: usize = 1 << 20;
+
 impl Plan {
+    /// Samples one pass through the plan handles at most: as many as fit the workspace
+    /// budget, at least one.
+    pub fn slice_samples(&self) -> usize {
+        let per_sample: usize = self.buffer_len.iter().sum();
+        (WORKSPACE_FLOATS / per_sample.max(1)).max(1)
+    }
+
     /// Runs `batch` samples laid out back to back in `input` and writes the graph output of
     /// each, back to back, to `output`. The caller checks the lengths (see `Engine::run`).
     pub(crate) fn run_unchecked(
@@ -43,6 +66,38 @@ impl Plan {
         ws: &mut Workspace,
         output: &mut [f32],
     ) {
+        self.run_in_slices(input, batch, ws, output, self.slice_samples());
+    }
+
+    /// [`Plan::run_unchecked`] with the slice size given (tests force small ones).
+    fn run_in_slices(
+        &self,
+        input: &[f32],
+        batch: usize,
+        ws: &mut Workspace,
+        output: &mut [f32],
+        slice: usize,
+    ) {
+        if batch <= slice {
+            return self.run_slice(input, batch, ws, output);
+        }
+        let in_len = self.value_len[self.input];
+        let out_len = self.value_len[self.output];
+        let mut start = 0;
+        while start < batch {
+            let n = slice.min(batch - start);
+            self.run_slice(
+                &input[start * in_len..(start + n) * in_len],
+                n,
+                ws,
+                &mut output[start * out_len..(start + n) * out_len],
+            );
+            start += n;
+        }
+    }
+
+    /// One pass of at most `slice_samples` samples.
+    fn run_slice(&self, input: &[f32], batch: usize, ws: &mut Workspace, output: &mut [f32]) {
         ws.prepare(self, batch);
         let in_len = self.value_len[self.input];
         ws.buffers[self.value_buffer[self.input]][..in_len * batch].copy_from_slice(input);
@@ -300,5 +355,102 @@ fn run_conv(
                 );
             }
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::bundle::manifest::{InputSpec, OutputKind, OutputSpec};
+    use crate::bundle::{Bundle, BundleWriter};
+    use crate::engine::kernels::isa::Isa;
+    use crate::graph::Op;
+    use crate::graph::build::{GraphBuilder, SplitMix64};
+
+    /// Convolution, ReLU, max pooling, dense: one step of each kind that treats the batch
+    /// differently (per-sample kernels, and the dense layer's batch-wide matrix multiply).
+    fn small_net() -> Bundle {
+        let mut rng = SplitMix64::new(5);
+        let mut b = GraphBuilder::new("x", &[2, 6, 6]);
+        let x = b.input();
+        let w = b.tensor("conv.w", &[4, 2, 3, 3], rng.vec(72, -0.5, 0.5));
+        let c = b.node(
+            "conv",
+            Op::Conv2d {
+                weight: w,
+                bias: None,
+                stride: [1, 1],
+                dilation: [1, 1],
+                padding: [1; 4],
+                groups: 1,
+            },
+            &[&x],
+        );
+        let r = b.node("relu", Op::Relu, &[&c]);
+        let p = b.node(
+            "pool",
+            Op::MaxPool {
+                kernel: [2, 2],
+                stride: None,
+                padding: [0; 4],
+                dilation: [1, 1],
+                ceil_mode: false,
+            },
+            &[&r],
+        );
+        let f = b.node("flatten", Op::Flatten, &[&p]);
+        let dw = b.tensor("fc.w", &[5, 36], rng.vec(180, -0.5, 0.5));
+        let db = b.tensor("fc.b", &[5], rng.vec(5, -0.1, 0.1));
+        let d = b.node(
+            "fc",
+            Op::Dense {
+                weight: dw,
+                bias: Some(db),
+                weight_layout: Default::default(),
+            },
+            &[&f],
+        );
+        let (graph, tensors) = b.finish(&d);
+        let mut w = BundleWriter::new(
+            "slices",
+            "1",
+            graph,
+            InputSpec {
+                shape: vec![2, 6, 6],
+                image: None,
+            },
+            OutputSpec {
+                labels: Vec::new(),
+                kind: OutputKind::Logits,
+            },
+        );
+        for (name, shape, data) in tensors {
+            w.add_tensor(name, &shape, data).unwrap();
+        }
+        Bundle::from_bytes(w.to_bytes().unwrap()).unwrap()
+    }
+
+    /// Slicing a batch must not change a single bit of any output: the executor's batch
+    /// invariance (module docs), which the PyTorch reference tests check through the public
+    /// API for batches that fit one slice.
+    #[test]
+    fn slices_do_not_change_results() {
+        let bundle = small_net();
+        let plan = Plan::new(&bundle, Isa::detect().unwrap());
+        let batch = 7;
+        let x = SplitMix64::new(9).vec(batch * plan.input_len(), -1.0, 1.0);
+        let run = |slice: usize| {
+            let mut out = vec![0.0; batch * plan.output_len()];
+            plan.run_in_slices(&x, batch, &mut Workspace::new(), &mut out, slice);
+            out.iter().map(|v| v.to_bits()).collect::<Vec<_>>()
+        };
+        let whole = run(batch);
+        for slice in [1, 2, 3, 6] {
+            assert_eq!(run(slice), whole, "slices of {slice}");
+        }
+        assert!(
+            plan.slice_samples() >= batch,
+            "a small net keeps its batch together"
+        );
     }
 }

@@ -1,21 +1,23 @@
 //! Folding and fusion on the plan's internal node list, before kernels are chosen.
 
+use std::borrow::Cow;
 use std::collections::HashMap;
 
 use super::ValueId;
 use crate::engine::kernels::activation::Activation;
 
-/// Internal node before lowering.
-pub(super) struct IrNode {
+/// Internal node before lowering. Weights borrow from the bundle (`'w`) until something
+/// changes them (folding), so planning copies only what it rewrites.
+pub(super) struct IrNode<'w> {
     pub(super) name: String,
-    pub(super) kind: IrKind,
+    pub(super) kind: IrKind<'w>,
     pub(super) inputs: Vec<ValueId>,
     pub(super) output: ValueId,
 }
 
-pub(super) enum IrKind {
+pub(super) enum IrKind<'w> {
     Conv {
-        weight: Vec<f32>,
+        weight: Cow<'w, [f32]>,
         bias: Option<Vec<f32>>,
         wshape: [usize; 4],
         stride: [usize; 2],
@@ -27,7 +29,7 @@ pub(super) enum IrKind {
     },
     Dense {
         /// `[out, in]` row-major.
-        weight: Vec<f32>,
+        weight: Cow<'w, [f32]>,
         bias: Option<Vec<f32>>,
         out: usize,
         act: Activation,
@@ -69,7 +71,7 @@ pub(super) enum IrKind {
 
 /// Counts how many live nodes read each value (the graph output counts as one more reader).
 /// Reads through an alias count against the node output that holds the data.
-fn readers(nodes: &[IrNode], alias_of: &[ValueId], graph_output: ValueId) -> Vec<usize> {
+fn readers(nodes: &[IrNode<'_>], alias_of: &[ValueId], graph_output: ValueId) -> Vec<usize> {
     let n_values = alias_of.len();
     let mut count = vec![0usize; n_values];
     for n in nodes {
@@ -91,13 +93,13 @@ fn readers(nodes: &[IrNode], alias_of: &[ValueId], graph_output: ValueId) -> Vec
 }
 
 pub(super) fn fuse(
-    nodes: &mut Vec<IrNode>,
+    nodes: &mut Vec<IrNode<'_>>,
     graph_output: ValueId,
     value_shape: &[Vec<usize>],
     alias_of: &[ValueId],
     folded: &mut Vec<String>,
 ) {
-    let producer_of = |nodes: &Vec<IrNode>| -> HashMap<ValueId, usize> {
+    let producer_of = |nodes: &Vec<IrNode<'_>>| -> HashMap<ValueId, usize> {
         nodes
             .iter()
             .enumerate()
@@ -166,6 +168,7 @@ pub(super) fn fuse(
             }
             _ => unreachable!("checked foldable"),
         };
+        let weight = weight.to_mut();
         let channels = gamma.len();
         let old_bias = bias.take().unwrap_or_else(|| vec![0.0; channels]);
         let mut new_bias = vec![0.0f32; channels];

@@ -8,7 +8,7 @@ use crate::engine::kernels::isa::Isa;
 use crate::engine::kernels::pool::{Broadcast, PoolGeom};
 
 pub(super) fn lower(
-    nodes: Vec<IrNode>,
+    nodes: Vec<IrNode<'_>>,
     isa: Isa,
     value_shape: Vec<Vec<usize>>,
     alias_of: Vec<ValueId>,

@@ -13,6 +13,7 @@
 //! Folding and fusing change rounding only (a product of two f32 factors is formed once,
 //! rather than in two steps), well inside the executor's tolerance.
 
+use std::borrow::Cow;
 use std::collections::HashMap;
 
 mod fuse;
@@ -169,10 +170,10 @@ impl Plan {
     pub fn new(bundle: &Bundle, isa: Isa) -> Plan {
         let graph = &bundle.manifest().graph;
         let shapes = bundle.shapes();
-        let tensor = |name: &str| -> Vec<f32> {
-            // Verified bundle: every tensor a node names exists (shapes::infer checked it).
-            bundle.tensor(name).expect("verified tensor").into_owned()
-        };
+        // Verified bundle: every tensor a node names exists (shapes::infer checked it).
+        let weights =
+            |name: &str| -> Cow<'_, [f32]> { bundle.tensor(name).expect("verified tensor") };
+        let tensor = |name: &str| -> Vec<f32> { weights(name).into_owned() };
 
         // Values: graph input first, then one per node output; aliases point at their source.
         let mut ids: HashMap<&str, ValueId> = HashMap::new();
@@ -204,7 +205,7 @@ impl Plan {
                 } => {
                     let ws = bundle.tensor_shape(weight).unwrap_or_default();
                     IrKind::Conv {
-                        weight: tensor(weight),
+                        weight: weights(weight),
                         bias: bias.as_deref().map(tensor),
                         wshape: [ws[0], ws[1], ws[2], ws[3]],
                         stride: *stride,
@@ -221,7 +222,7 @@ impl Plan {
                     weight_layout,
                 } => {
                     let ws = bundle.tensor_shape(weight).unwrap_or_default();
-                    let w = tensor(weight);
+                    let w = weights(weight);
                     let (out, weight) = match weight_layout {
                         WeightLayout::OutIn => (ws[0], w),
                         WeightLayout::InOut => {
@@ -232,7 +233,7 @@ impl Plan {
                                     t[o * inp + i] = w[i * out + o];
                                 }
                             }
-                            (out, t)
+                            (out, Cow::Owned(t))
                         }
                     };
                     IrKind::Dense {
