@@ -20,6 +20,20 @@ pub struct PoolGeom {
 
 /// Max pooling; padding never wins (it counts as −∞).
 pub fn max_pool(g: &PoolGeom, input: &[f32], output: &mut [f32]) {
+    if g.kernel == [2, 2]
+        && g.stride == [2, 2]
+        && g.dilation == [1, 1]
+        && g.padding == [0; 4]
+        && 2 * g.out_h <= g.in_h
+        && 2 * g.out_w <= g.in_w
+    {
+        return max_pool_2x2_inside(g, input, output);
+    }
+    max_pool_general(g, input, output);
+}
+
+/// Any window, stride, dilation and padding; taps outside the input are skipped.
+fn max_pool_general(g: &PoolGeom, input: &[f32], output: &mut [f32]) {
     let (ih, iw) = (g.in_h as isize, g.in_w as isize);
     for c in 0..g.c {
         let plane = &input[c * g.in_h * g.in_w..][..g.in_h * g.in_w];
@@ -48,6 +62,36 @@ pub fn max_pool(g: &PoolGeom, input: &[f32], output: &mut [f32]) {
                     }
                 }
                 out[oy * g.out_w + ox] = best;
+            }
+        }
+    }
+}
+
+/// The fold of [`max_pool`]: NaN wins (and stays), otherwise the larger value; on a tie the
+/// earlier value stays (so -0.0 before +0.0 gives -0.0, as the general loop does).
+#[inline(always)]
+fn keep_max(best: f32, v: f32) -> f32 {
+    if v > best || v.is_nan() { v } else { best }
+}
+
+/// 2×2 windows, stride 2, no padding, every window inside the input (the pooling of most small
+/// CNNs): the general loop's bounds checks and index arithmetic cost more than the comparisons.
+/// Same taps in the same order as [`max_pool`], so the same bits.
+fn max_pool_2x2_inside(g: &PoolGeom, input: &[f32], output: &mut [f32]) {
+    let (w, ow) = (g.in_w, g.out_w);
+    for c in 0..g.c {
+        let plane = &input[c * g.in_h * w..][..g.in_h * w];
+        let out = &mut output[c * g.out_h * ow..][..g.out_h * ow];
+        for (oy, out_row) in out.chunks_exact_mut(ow).enumerate() {
+            let top = &plane[2 * oy * w..][..2 * ow];
+            let bottom = &plane[(2 * oy + 1) * w..][..2 * ow];
+            for ((o, t), b) in out_row
+                .iter_mut()
+                .zip(top.chunks_exact(2))
+                .zip(bottom.chunks_exact(2))
+            {
+                let best = keep_max(keep_max(f32::NEG_INFINITY, t[0]), t[1]);
+                *o = keep_max(keep_max(best, b[0]), b[1]);
             }
         }
     }
@@ -231,6 +275,30 @@ mod tests {
         assert!(y.iter().all(|&v| (v - 4.0 / 9.0).abs() < 1e-7));
         avg_pool(&geom(2, 2, 3, 1, 1, 2, 2), false, &x, &mut y);
         assert!(y.iter().all(|&v| (v - 1.0).abs() < 1e-7));
+    }
+
+    // The 2×2 fast path gives the general loop's bits, NaN and signed zeros included, on odd
+    // sizes too (the last row and column are left out, as floor mode does).
+    #[test]
+    fn max_pool_2x2_fast_path_matches_the_general_loop() {
+        let (c, h, w) = (3, 7, 9);
+        let specials = [f32::NAN, -0.0, 0.0, f32::NEG_INFINITY, f32::INFINITY];
+        let x: Vec<f32> = (0..c * h * w)
+            .map(|i| match i % 11 {
+                0..=4 => specials[i % 11],
+                _ => ((i * 37) % 17) as f32 - 8.0,
+            })
+            .collect();
+        let g = PoolGeom {
+            c,
+            ..geom(h, w, 2, 2, 0, 3, 4)
+        };
+        let (mut fast, mut general) = (vec![0.0; c * 12], vec![0.0; c * 12]);
+        max_pool(&g, &x, &mut fast);
+        max_pool_general(&g, &x, &mut general);
+        let bits = |v: &[f32]| v.iter().map(|f| f.to_bits()).collect::<Vec<_>>();
+        assert_eq!(bits(&fast), bits(&general));
+        assert!(fast.iter().any(|v| v.is_nan()));
     }
 
     #[test]
