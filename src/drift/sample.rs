@@ -244,6 +244,18 @@ impl StatSchema {
         self.compute_output(probabilities, out)
     }
 
+    /// `out` must be this schema's: one slot per statistic.
+    fn check_stats(&self, out: &SampleStats) -> Result<(), DriftError> {
+        if out.values.len() == self.kinds.len() {
+            Ok(())
+        } else {
+            Err(DriftError::StatsLength {
+                expected: self.kinds.len(),
+                got: out.values.len(),
+            })
+        }
+    }
+
     /// The input half of [`StatSchema::compute`]: every statistic but `top1_probability`,
     /// `entropy` and the predicted class. The server runs it where the input is prepared (a
     /// blocking thread), and the cheap output half once the batch is computed.
@@ -264,12 +276,7 @@ impl StatSchema {
                 got: input.len(),
             });
         }
-        if out.values.len() != self.kinds.len() {
-            return Err(DriftError::StatsLength {
-                expected: self.kinds.len(),
-                got: out.values.len(),
-            });
-        }
+        self.check_stats(out)?;
         let mut non_finite = 0u32;
         if self.channels <= MAX_CHANNEL_STATS {
             for (k, channel) in input.chunks_exact(plane).enumerate() {
@@ -328,12 +335,7 @@ impl StatSchema {
                 got: probabilities.len(),
             });
         }
-        if out.values.len() != self.kinds.len() {
-            return Err(DriftError::StatsLength {
-                expected: self.kinds.len(),
-                got: out.values.len(),
-            });
-        }
+        self.check_stats(out)?;
         let summary = OutputSummary::of(probabilities);
         out.values[self.outputs] = summary.top1;
         out.values[self.outputs + 1] = summary.entropy;

@@ -328,19 +328,21 @@ impl Registry {
             );
             return outcome(Err(refusal));
         }
+        // The slot of this attempt, from this file.
+        let fresh = |state, model| VersionSlot {
+            version: version.clone(),
+            state,
+            model,
+            origin: origin.to_string(),
+            file: file.map(Path::to_path_buf),
+            file_present: file.is_some(),
+            bundle_sha256: bundle_sha256.clone(),
+            held_back: false,
+            note: String::new(),
+        };
         match result {
             Ok(model) => {
-                slot.put(VersionSlot {
-                    version: version.clone(),
-                    state: VersionState::Ready,
-                    model: Some(Arc::new(model)),
-                    origin: origin.to_string(),
-                    file: file.map(Path::to_path_buf),
-                    file_present: file.is_some(),
-                    bundle_sha256,
-                    held_back: false,
-                    note: String::new(),
-                });
+                slot.put(fresh(VersionState::Ready, Some(Arc::new(model))));
                 outcome(Ok(()))
             }
             Err(refusal) => {
@@ -352,17 +354,7 @@ impl Registry {
                     }
                     slot.put(e);
                 } else {
-                    slot.put(VersionSlot {
-                        version: version.clone(),
-                        state: VersionState::Refused(refusal.clone()),
-                        model: None,
-                        origin: origin.to_string(),
-                        file: file.map(Path::to_path_buf),
-                        file_present: file.is_some(),
-                        bundle_sha256,
-                        held_back: false,
-                        note: String::new(),
-                    });
+                    slot.put(fresh(VersionState::Refused(refusal.clone()), None));
                 }
                 outcome(Err(refusal))
             }
