@@ -311,9 +311,25 @@ pub(super) unsafe fn run<S: Simd, const MR: usize, const NV: usize>(
     let a_base = job.a.data.as_ptr();
     let a_panels = m.div_ceil(MR);
     let out = &job.out;
+    // The pitched layout's store pieces depend on the tile only, not on the A panel: worked
+    // out once per tile rather than once per panel.
+    let mut list = [pitched::Piece::default(); pitched::MAX_PIECES];
     let mut t = lo;
     while t < hi {
-        let nv = (hi - t).div_ceil(S::LANES).min(NV);
+        // The vectors left, split evenly over the fewest tiles that hold them: 4 vectors
+        // (an 8x8 output at 16 lanes) make two tiles of 2, not 3 + 1, whose lone vector
+        // would wait on 8 broadcasts per step with 8 accumulator chains.
+        let left = (hi - t).div_ceil(S::LANES);
+        let nv = left.div_ceil(left.div_ceil(NV));
+        let count = match lay {
+            Layout::Pitched(p) => pitched::pieces(
+                (t, nv * S::LANES, S::LANES),
+                (lo, hi),
+                (p.pitch, g.out_w),
+                &mut list,
+            ),
+            Layout::Planes(_) => 0,
+        };
         for ap in 0..a_panels {
             let rows = (ap * MR, MR.min(m - ap * MR));
             // SAFETY: panel `ap` exists; B reads are inside the buffer (checked above); the
@@ -326,8 +342,8 @@ pub(super) unsafe fn run<S: Simd, const MR: usize, const NV: usize>(
                         let acc = kernel::tile_gather::<S, MR, $nv>(s, k, a_ptr, b_ptr, offs);
                         match lay {
                             Layout::Planes(_) => store::<S, MR, $nv>(s, &acc, out, rows, (t, hi)),
-                            Layout::Pitched(p) => {
-                                pitched::store::<S, MR, $nv>(s, &acc, out, rows, t, (lo, hi), p, g)
+                            Layout::Pitched(_) => {
+                                pitched::store::<S, MR, $nv>(s, &acc, out, rows, &list[..count])
                             }
                         }
                     }};

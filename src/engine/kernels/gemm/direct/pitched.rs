@@ -180,7 +180,7 @@ pub(in super::super) struct Piece {
 }
 
 /// Most pieces a tile can have: at most one per lane.
-const MAX_PIECES: usize = 64;
+pub(in super::super) const MAX_PIECES: usize = 64;
 
 /// The pieces of the tile whose `width` lanes are linear indices `t..t + width`, kept where
 /// inside `lo..hi` and not a padding column, in lane order; one division per tile.
@@ -218,34 +218,24 @@ pub(in super::super) fn pieces(
     count
 }
 
-/// Stores a `tile_gather` result whose lanes are linear indices `t..`, finishing
-/// each piece in registers.
+/// Stores a `tile_gather` result through its [`pieces`] (worked out by the caller for a tile
+/// of `NV` vectors), finishing each piece in registers.
 ///
 /// # Safety
-/// Every kept `(m, n)` of rows `m0..m0 + rows` must be inside C, the residual and the bias.
+/// Every piece's `(m, n)` for rows `m0..m0 + rows` must be inside C, the residual and the
+/// bias.
 #[inline(always)]
-#[allow(clippy::too_many_arguments)] // one call site, in the driver
 pub(in super::super) unsafe fn store<S: Simd, const MR: usize, const NV: usize>(
     s: S,
     acc: &[[S::V; NV]; MR],
     out: &Out,
     (m0, rows): (usize, usize),
-    t: usize,
-    lims: (usize, usize),
-    lay: &Pitched,
-    g: &ConvGeom,
+    list: &[Piece],
 ) {
-    let mut list = [Piece::default(); MAX_PIECES];
-    let count = pieces(
-        (t, NV * S::LANES, S::LANES),
-        lims,
-        (lay.pitch, g.out_w),
-        &mut list,
-    );
     for (r, acc_r) in acc.iter().enumerate().take(rows) {
-        for p in &list[..count] {
-            // SAFETY: a piece's columns are kept ones (caller); `p.v < NV` as the tile
-            // has NV vectors.
+        for p in list {
+            // SAFETY: a piece's columns are kept ones (caller); `p.v < NV` as the caller
+            // worked the pieces out for a tile of NV vectors.
             unsafe { out.finish_lanes(s, m0 + r, p.n, acc_r[p.v], (p.from, p.len)) };
         }
     }
