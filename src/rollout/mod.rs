@@ -153,22 +153,12 @@ impl Rollout {
         let started = Instant::now();
         let _known = self.known.lock().await;
         let mut report = ChangeReport::default();
-        let registry = Arc::clone(&self.registry);
-        let origin_owned = origin.to_string();
-        let outcome = tokio::task::spawn_blocking(move || {
-            let attempt = load_version(bytes, &origin_owned, registry.settings());
-            registry.record(attempt, &origin_owned, None)
-        })
-        .await;
-        match outcome {
-            Ok(outcome) => {
-                let name = outcome.name.clone();
-                report.loads.push(outcome);
-                if let Some(name) = name {
-                    self.settle(&name, started, &mut report).await;
-                }
+        if let Some(outcome) = self.load_and_record(bytes, origin.to_string(), None).await {
+            let name = outcome.name.clone();
+            report.loads.push(outcome);
+            if let Some(name) = name {
+                self.settle(&name, started, &mut report).await;
             }
-            Err(e) => tracing::error!(%origin, error = %e, "load task failed"),
         }
         self.publish(&report).await;
         report
@@ -388,24 +378,34 @@ impl Rollout {
                 return None;
             }
         };
+        let outcome = self
+            .load_and_record(bytes, origin, Some(path.to_path_buf()))
+            .await?;
+        Some((outcome, stamp))
+    }
+
+    /// Marks the bundle's version as loading (health says NOT_SERVING for a model with nothing
+    /// else ready), runs the load steps on a blocking thread and records the result. `None`
+    /// only if the blocking task itself failed (logged).
+    async fn load_and_record(
+        &self,
+        bytes: Vec<u8>,
+        origin: String,
+        file: Option<PathBuf>,
+    ) -> Option<LoadOutcome> {
         if let Some((name, version)) = peek_identity(&bytes) {
             self.registry.mark_loading(&name, &version, &origin);
             self.sync_health().await;
         }
         let registry = Arc::clone(&self.registry);
-        let file = path.to_path_buf();
-        let outcome = tokio::task::spawn_blocking(move || {
-            let attempt = load_version(bytes, &origin, registry.settings());
-            registry.record(attempt, &origin, Some(&file))
+        let task_origin = origin.clone();
+        tokio::task::spawn_blocking(move || {
+            let attempt = load_version(bytes, &task_origin, registry.settings());
+            registry.record(attempt, &task_origin, file.as_deref())
         })
-        .await;
-        match outcome {
-            Ok(o) => Some((o, stamp)),
-            Err(e) => {
-                tracing::error!(file = %path.display(), error = %e, "load task failed");
-                None
-            }
-        }
+        .await
+        .inspect_err(|e| tracing::error!(%origin, error = %e, "load task failed"))
+        .ok()
     }
 
     /// Loads what the policy wants active (when it was released before), then swaps and
