@@ -1,11 +1,12 @@
 //! `convoy serve`: settings from defaults, a TOML file, environment variables and flags (each
-//! overriding the one before), then the server until Ctrl-C or SIGTERM.
+//! overriding the one before), then the server until Ctrl-C or SIGTERM, which drain it (see
+//! [`crate::service::RunningServer::drain`]); a second signal stops at once.
 
 use std::net::SocketAddr;
 use std::path::PathBuf;
 
 use super::CliError;
-use crate::service::{ServeConfig, start};
+use crate::service::{DrainSettings, ServeConfig, start};
 
 /// Flags of `convoy serve`; each also reads an environment variable.
 #[derive(Clone, Debug, clap::Args)]
@@ -100,7 +101,7 @@ pub fn serve(args: &ServeArgs) -> Result<(), CliError> {
         .build()
         .map_err(CliError::Runtime)?;
     runtime.block_on(async move {
-        let mut server = start(&config).await?;
+        let server = start(&config).await?;
         let loaded = server.loads.iter().filter(|l| l.result.is_ok()).count();
         let refused = server.loads.len() - loaded;
         eprintln!(
@@ -117,15 +118,32 @@ pub fn serve(args: &ServeArgs) -> Result<(), CliError> {
                 None => String::new(),
             }
         );
-        let stop = server.take_shutdown();
+        wait_for_signal().await.map_err(CliError::Runtime)?;
+        let settings = DrainSettings::from_config(&config);
+        tracing::info!(
+            grace_ms = config.shutdown_grace_ms,
+            notice_ms = config.shutdown_notice_ms,
+            "draining: health NOT_SERVING, finishing accepted requests"
+        );
         tokio::select! {
+            report = server.drain(settings) => {
+                tracing::info!(
+                    took_ms = report.took.as_millis() as u64,
+                    unanswered = report.unanswered,
+                    "stopped"
+                );
+                if report.unanswered > 0 {
+                    return Err(CliError::Serve(format!(
+                        "{} accepted request(s) were still unanswered when the grace period of {} ms ended",
+                        report.unanswered, config.shutdown_grace_ms
+                    )));
+                }
+                Ok(())
+            }
+            // A second signal: the operator does not want to wait.
             r = wait_for_signal() => {
                 r.map_err(CliError::Runtime)?;
-                tracing::info!("shutting down");
-                if let Some(tx) = stop {
-                    let _ = tx.send(());
-                }
-                server.wait().await.map_err(|e| CliError::Serve(e.to_string()))
+                Err(CliError::Serve("stopped by a second signal before the drain finished".into()))
             }
         }
     })

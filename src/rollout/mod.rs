@@ -121,6 +121,8 @@ pub struct Rollout {
     /// Model names whose health status has been set, so that a model that disappears can be
     /// cleared.
     reported: std::sync::Mutex<BTreeSet<String>>,
+    /// Set when the server drains: health reports NOT_SERVING whatever is loaded.
+    stopping: std::sync::atomic::AtomicBool,
 }
 
 impl Rollout {
@@ -137,6 +139,7 @@ impl Rollout {
             dir,
             known: tokio::sync::Mutex::new(Known::default()),
             reported: std::sync::Mutex::new(BTreeSet::new()),
+            stopping: std::sync::atomic::AtomicBool::new(false),
         }
     }
 
@@ -499,13 +502,23 @@ impl Rollout {
         self.sync_health().await;
     }
 
+    /// Turns every health status NOT_SERVING for good (the server is draining), so that
+    /// balancers and readiness probes send no more work here.
+    pub async fn stop_serving(&self) {
+        self.stopping
+            .store(true, std::sync::atomic::Ordering::SeqCst);
+        self.sync_health().await;
+    }
+
     /// Sets every model's health status from the registry: SERVING when it has an active
-    /// version; NOT_SERVING while its first version loads, or when none can answer. The
-    /// overall status (`""`) and the predictor service's follow "any model can answer".
+    /// version; NOT_SERVING while its first version loads, when none can answer, or once the
+    /// server drains. The overall status (`""`) and the predictor service's follow "any model
+    /// can answer".
     pub async fn sync_health(&self) {
         let snapshot = self.registry.snapshot();
+        let stopping = self.stopping.load(std::sync::atomic::Ordering::SeqCst);
         let status = |ok: bool| {
-            if ok {
+            if ok && !stopping {
                 ServingStatus::Serving
             } else {
                 ServingStatus::NotServing

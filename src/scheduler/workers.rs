@@ -11,6 +11,7 @@ use tokio::sync::OwnedSemaphorePermit;
 use super::{ComputeError, Computed, Part};
 use crate::engine::RunOptions;
 use crate::registry::ModelVersion;
+use crate::telemetry::BatchOutcome;
 
 /// Runs one batch: `count` samples back to back in `inputs`, outputs into `out`.
 pub trait BatchRunner: Send + Sync {
@@ -137,6 +138,8 @@ fn run_job(job: Job) {
     let mut out = vec![0.0f32; total * out_len];
     let started = Instant::now();
     let result = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
+        #[cfg(debug_assertions)]
+        fault::panic_if_asked(&inputs);
         job.runner.run(model, &inputs, total, &mut out)
     }));
     let compute = started.elapsed();
@@ -164,13 +167,12 @@ fn run_job(job: Job) {
             })
         }
     };
-    crate::telemetry::batch_computed(
-        &model.name,
-        &model.version,
-        total,
-        compute,
-        failure.is_some(),
-    );
+    let outcome = match &failure {
+        None => BatchOutcome::Ok,
+        Some(ComputeError::Panicked { .. }) => BatchOutcome::Panicked,
+        Some(_) => BatchOutcome::Failed,
+    };
+    crate::telemetry::batch_computed(&model.name, &model.version, total, compute, outcome);
     let mut at = 0;
     for (part, waited) in &job.parts {
         let r = &part.request;
@@ -199,6 +201,30 @@ fn run_job(job: Job) {
                 compute: stats.1,
                 batch_size: stats.2,
             }));
+        }
+    }
+}
+
+/// Faults on demand, in debug builds only (tests): release builds have no such switch.
+#[cfg(debug_assertions)]
+mod fault {
+    use std::sync::OnceLock;
+
+    /// Environment variable: a batch holding this exact input value panics on its compute
+    /// thread, so tests can check that a panic fails only its own batch.
+    pub const PANIC_ON_INPUT: &str = "CONVOY_TEST_PANIC_ON_INPUT";
+
+    pub fn panic_if_asked(inputs: &[f32]) {
+        static TRIGGER: OnceLock<Option<f32>> = OnceLock::new();
+        let trigger = TRIGGER.get_or_init(|| {
+            std::env::var(PANIC_ON_INPUT)
+                .ok()
+                .and_then(|v| v.trim().parse().ok())
+        });
+        if let Some(t) = trigger
+            && inputs.contains(t)
+        {
+            panic!("fault injected by {PANIC_ON_INPUT}={t}");
         }
     }
 }

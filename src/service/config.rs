@@ -60,6 +60,13 @@ pub struct ServeConfig {
     pub drift_window: usize,
     /// Significance level of the drift tests (before the Bonferroni correction).
     pub drift_alpha: f64,
+    /// Longest a shutdown (SIGTERM, Ctrl-C) waits for accepted requests to be answered before
+    /// the process exits anyway, in milliseconds.
+    pub shutdown_grace_ms: u64,
+    /// At shutdown, health turns NOT_SERVING at once; new requests are still answered for this
+    /// long (so that balancers watching health move away first), then refused. Milliseconds;
+    /// 0: refuse at once.
+    pub shutdown_notice_ms: u64,
     /// The token itself, when given by the environment or in-process; never read from TOML,
     /// so that settings files hold no secret.
     #[serde(skip)]
@@ -100,6 +107,10 @@ impl Default for ServeConfig {
             // Common practice for a single test; the report divides it by the number of
             // statistics tested (Bonferroni).
             drift_alpha: 0.05,
+            // Below Kubernetes' default terminationGracePeriodSeconds (30 s, from memory), so
+            // the process ends on its own before it would be killed.
+            shutdown_grace_ms: 25_000,
+            shutdown_notice_ms: 0,
             control_token: None,
         }
     }
@@ -200,6 +211,15 @@ impl ServeConfig {
                 problem: format!(
                     "{} exceeds queue_limit {}: such a request could never be queued",
                     self.max_samples_per_request, self.queue_limit
+                ),
+            });
+        }
+        if self.shutdown_notice_ms >= self.shutdown_grace_ms {
+            return Err(ConfigError::Invalid {
+                key: "shutdown_notice_ms",
+                problem: format!(
+                    "{} must be below shutdown_grace_ms {}",
+                    self.shutdown_notice_ms, self.shutdown_grace_ms
                 ),
             });
         }

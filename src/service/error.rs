@@ -26,6 +26,10 @@ pub enum ServiceError {
     Submit(#[from] SubmitError),
     #[error(transparent)]
     Compute(#[from] ComputeError),
+    #[error(
+        "the server is shutting down and takes no new requests; send this one to another replica"
+    )]
+    ShuttingDown,
     #[error("internal error: {0}")]
     Internal(String),
 }
@@ -54,6 +58,9 @@ impl ServiceError {
             ServiceError::Submit(SubmitError::Closed | SubmitError::Retired { .. }) => {
                 Code::Unavailable
             }
+            // Nothing of the request was done: safe to send again (doc/statuscodes.md of the
+            // gRPC project: UNAVAILABLE is the retryable, transient code).
+            ServiceError::ShuttingDown => Code::Unavailable,
             ServiceError::Compute(_) | ServiceError::Internal(_) => Code::Internal,
         }
     }

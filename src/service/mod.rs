@@ -10,11 +10,13 @@
 
 pub mod api;
 pub mod config;
+pub mod drain;
 pub mod error;
 pub mod predictor;
 
 use std::net::SocketAddr;
 use std::sync::Arc;
+use std::time::Duration;
 
 use tokio::net::TcpListener;
 use tokio::sync::oneshot;
@@ -31,6 +33,9 @@ use crate::rollout::{Rollout, RolloutError};
 use crate::scheduler::{Scheduler, SchedulerConfig};
 use crate::telemetry::{self, TelemetryError, TelemetryHandle};
 use predictor::{PredictorService, RequestLimits, Shared};
+
+/// How long a drain lets the transport close its connections after the last reply.
+const CLOSE_WAIT: Duration = Duration::from_secs(1);
 
 /// The demo model, built into the binary so a fresh checkout can serve something.
 pub const DEMO_BUNDLE: &[u8] = include_bytes!(concat!(
@@ -73,11 +78,84 @@ pub struct RunningServer {
     /// The models folder's watcher; stops with the server.
     watcher: Option<WatchHandle>,
     control: Option<ControlServer>,
+    shared: Arc<Shared>,
     shutdown: Option<oneshot::Sender<()>>,
     task: tokio::task::JoinHandle<Result<(), tonic::transport::Error>>,
 }
 
+/// How long a drain may take, and how much notice balancers get.
+#[derive(Clone, Copy, Debug)]
+pub struct DrainSettings {
+    /// Longest wait for accepted requests (from the start of the drain).
+    pub grace: Duration,
+    /// Health NOT_SERVING, but new requests still answered, for this long first.
+    pub notice: Duration,
+}
+
+impl DrainSettings {
+    pub fn from_config(config: &ServeConfig) -> DrainSettings {
+        DrainSettings {
+            grace: Duration::from_millis(config.shutdown_grace_ms),
+            notice: Duration::from_millis(config.shutdown_notice_ms),
+        }
+    }
+}
+
+/// What a drain did.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct DrainReport {
+    /// Accepted requests still unanswered when the grace period ended (0: none was lost).
+    pub unanswered: usize,
+    /// From the start of the drain to the server's end.
+    pub took: Duration,
+}
+
 impl RunningServer {
+    /// Shuts down without losing an accepted request: health turns NOT_SERVING at once (and
+    /// stays so), new predict requests are answered for `notice` and refused with
+    /// UNAVAILABLE after it, requests already accepted — queued or computing — finish, then
+    /// the transport closes its connections. Returns within `grace` of the call (plus a
+    /// short close of the connections), whatever clients do.
+    pub async fn drain(mut self, settings: DrainSettings) -> DrainReport {
+        let started = tokio::time::Instant::now();
+        let deadline = started + settings.grace;
+        self.rollout.stop_serving().await;
+        // No version changes while draining.
+        self.watcher = None;
+        tokio::time::sleep_until((started + settings.notice).min(deadline)).await;
+        self.shared.admission.close();
+        let answered = tokio::time::timeout_at(deadline, self.shared.admission.idle())
+            .await
+            .is_ok();
+        let unanswered = self.shared.admission.in_flight();
+        if !answered {
+            tracing::warn!(
+                unanswered,
+                grace_ms = settings.grace.as_millis() as u64,
+                "grace period over with requests unanswered"
+            );
+        }
+        // Every accepted request has its reply; what remains open are streams that never end
+        // on their own (health watches, idle prediction streams). The transport says GOAWAY
+        // and gets a moment to flush replies, then the server task is stopped.
+        if let Some(tx) = self.shutdown.take() {
+            let _ = tx.send(());
+        }
+        self.stop_side_services().await;
+        let flush = if answered {
+            CLOSE_WAIT.min(deadline.saturating_duration_since(tokio::time::Instant::now()))
+        } else {
+            Duration::ZERO
+        };
+        if tokio::time::timeout(flush, &mut self.task).await.is_err() {
+            self.task.abort();
+        }
+        DrainReport {
+            unanswered,
+            took: started.elapsed(),
+        }
+    }
+
     /// Stops accepting calls, finishes those in flight, and waits for the server to end.
     ///
     /// # Errors
@@ -117,6 +195,11 @@ impl RunningServer {
             }
             let _ = c.task.await;
         }
+    }
+
+    /// Predict requests accepted and not yet answered.
+    pub fn in_flight(&self) -> usize {
+        self.shared.admission.in_flight()
     }
 
     /// A sender that stops the server when sent to (or dropped).
@@ -274,10 +357,12 @@ pub async fn start(config: &ServeConfig) -> Result<RunningServer, StartError> {
             stream_concurrency: config.stream_concurrency,
         },
         drift_alpha: config.drift_alpha,
+        admission: drain::Admission::default(),
     });
-    let predictor = api::predictor_server::PredictorServer::new(PredictorService::new(shared))
-        .max_decoding_message_size(config.max_message_bytes)
-        .max_encoding_message_size(config.max_message_bytes);
+    let predictor =
+        api::predictor_server::PredictorServer::new(PredictorService::new(Arc::clone(&shared)))
+            .max_decoding_message_size(config.max_message_bytes)
+            .max_encoding_message_size(config.max_message_bytes);
 
     let listener = bind(config.listen).await?;
     let local_addr = local_addr_of(&listener, config.listen)?;
@@ -320,6 +405,7 @@ pub async fn start(config: &ServeConfig) -> Result<RunningServer, StartError> {
         telemetry,
         watcher,
         control,
+        shared,
         shutdown: Some(tx),
         task,
     })

@@ -10,6 +10,7 @@ use tokio_stream::{Stream, StreamExt};
 use tonic::{Request, Response, Status, Streaming};
 
 use super::api::{self, predictor_server::Predictor, sample::Data};
+use super::drain::Admission;
 use super::error::ServiceError;
 use crate::bundle::manifest::{OutputKind, spelling};
 use crate::drift::{SampleStats, Verdict};
@@ -44,6 +45,8 @@ pub(crate) struct Shared {
     pub limits: RequestLimits,
     /// Significance level of drift reports.
     pub drift_alpha: f64,
+    /// Requests accepted and not yet answered; closed when the server drains.
+    pub admission: Admission,
 }
 
 /// The service object handed to tonic.
@@ -73,9 +76,16 @@ impl Shared {
             telemetry::UNKNOWN.to_string(),
             telemetry::UNKNOWN.to_string(),
         );
-        let result = self
-            .predict_inner(req, received, deadline, &mut labels)
-            .await;
+        // Counted until it is answered, so that a draining server waits for it.
+        let admitted = self.admission.admit();
+        let result = match admitted {
+            Some(_) => {
+                self.predict_inner(req, received, deadline, &mut labels)
+                    .await
+            }
+            None => Err(ServiceError::ShuttingDown),
+        };
+        drop(admitted);
         let code = match &result {
             Ok(_) => tonic::Code::Ok,
             Err(e) => e.code(),

@@ -54,8 +54,8 @@ use metrics_exporter_prometheus::PrometheusHandle;
 pub use endpoint::{CONTENT_TYPE, PATH};
 pub use names::{SHED_CANCELLED, SHED_DEADLINE, SHED_QUEUE_FULL};
 pub use record::{
-    InFlight, UNKNOWN, active_version, batch_computed, code_name, image_prepared, in_flight,
-    queue_depth, queue_wait, request_finished, shed, version_loaded,
+    BatchOutcome, InFlight, UNKNOWN, active_version, batch_computed, code_name, image_prepared,
+    in_flight, queue_depth, queue_wait, request_finished, shed, version_loaded,
 };
 
 /// Why metrics could not be served.

@@ -106,16 +106,41 @@ pub fn batch_computed(
     version: &str,
     batch_size: usize,
     compute: Duration,
-    failed: bool,
+    outcome: BatchOutcome,
 ) {
     let (model, version) = labels(model, version);
     histogram!(BATCH_COMPUTE_SECONDS, "model" => model.clone(), "version" => version.clone())
         .record(compute.as_secs_f64());
     histogram!(BATCH_SIZE, "model" => model.clone(), "version" => version.clone())
         .record(batch_size as f64);
-    let outcome = if failed { "failed" } else { "ok" };
-    counter!(BATCHES_TOTAL, "model" => model, "version" => version, "outcome" => outcome)
+    counter!(BATCHES_TOTAL, "model" => model, "version" => version, "outcome" => outcome.label())
         .increment(1);
+}
+
+/// How a batch ended: the `outcome` label of `convoy_batches_total`.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum BatchOutcome {
+    Ok,
+    /// The executor returned an error.
+    Failed,
+    /// The executor panicked; the panic was caught and the thread carried on.
+    Panicked,
+}
+
+impl BatchOutcome {
+    pub const ALL: [BatchOutcome; 3] = [
+        BatchOutcome::Ok,
+        BatchOutcome::Failed,
+        BatchOutcome::Panicked,
+    ];
+
+    pub fn label(self) -> &'static str {
+        match self {
+            BatchOutcome::Ok => "ok",
+            BatchOutcome::Failed => "failed",
+            BatchOutcome::Panicked => "panicked",
+        }
+    }
 }
 
 /// `samples_waiting` samples of this model version wait for compute now.
@@ -190,8 +215,8 @@ fn export_at_zero(model: &str, version: &str) {
         counter!(name, "model" => m.clone(), "version" => v.clone(), "code" => code_name(tonic::Code::Ok))
             .increment(0);
     }
-    for outcome in ["ok", "failed"] {
-        counter!(BATCHES_TOTAL, "model" => m.clone(), "version" => v.clone(), "outcome" => outcome)
+    for outcome in BatchOutcome::ALL {
+        counter!(BATCHES_TOTAL, "model" => m.clone(), "version" => v.clone(), "outcome" => outcome.label())
             .increment(0);
     }
     for reason in SHED_REASONS {
