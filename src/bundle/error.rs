@@ -88,6 +88,8 @@ pub enum BundleError {
     },
     #[error("check samples: {problem}")]
     CheckSamples { problem: String },
+    #[error("signature block: {problem}")]
+    SignatureBlock { problem: &'static str },
 }
 
 impl From<GraphError> for BundleError {

@@ -6,18 +6,20 @@
 //! |---|---|
 //! | 0..8 | magic `\x89CVB\r\n\x1a\n` |
 //! | 8..12 | format version (u32, currently 1) |
-//! | 12..16 | flags (u32, must be 0) |
+//! | 12..16 | flags (u32): bit 1 ([`FLAG_SIGNED`]) = a signature block follows the data; every other bit must be 0 |
 //! | 16..24 | manifest length in bytes (u64) |
 //! | 24..32 | data section length in bytes (u64) |
 //! | 32..64 | SHA-256 of the manifest bytes |
 //! | 64.. | the manifest, UTF-8 JSON ([`Manifest`]) |
 //! | next multiple of 64 | the data section: every tensor little-endian f32, each 64-byte aligned |
+//! | end of data, if signed | the signature block, 128 bytes: magic, algorithm, signer's Ed25519 public key, signature of everything before it ([`signature`]) |
 //!
 //! The magic's first byte is not ASCII and it holds CR LF and ^Z, so a file damaged by a text-mode
 //! transfer or mistaken for text is refused at once (the same reasoning as the PNG signature,
 //! PNG specification §5.2). The data section is 64-byte aligned and tensors are stored
 //! little-endian so the file can be memory-mapped and its weights used in place. The file ends
-//! exactly where the data section ends; trailing bytes are refused.
+//! exactly where the data section ends (or, when signed, where the signature block ends);
+//! trailing bytes are refused.
 //!
 //! [`BundleWriter`] lays out and writes a bundle; [`Bundle`] opens and verifies one: header,
 //! manifest checksum, manifest, tensor index, data checksum, finite weights, graph, specs — in
@@ -26,12 +28,14 @@
 mod error;
 pub mod manifest;
 mod reader;
+pub mod signature;
 pub mod version;
 mod writer;
 
 pub use error::{BundleError, TensorProblem};
 pub use manifest::Manifest;
 pub use reader::{Bundle, check_name, peek_identity};
+pub use signature::FLAG_SIGNED;
 pub use writer::{
     BundleWriter, CHECK_INPUT_TENSOR, CHECK_OUTPUT_TENSOR, now_rfc3339, write_atomically,
 };

@@ -10,6 +10,7 @@ use sha2::{Digest, Sha256};
 
 use super::error::{BundleError, TensorProblem};
 use super::manifest::{Manifest, OutputKind};
+use super::signature::{FLAG_SIGNED, SIGNATURE_BLOCK_LEN, SignatureBlock};
 use super::version::validate_version;
 use super::{
     ALIGN, FORMAT_VERSION, HEADER_LEN, MAGIC, MAX_CHECK_SAMPLES, MAX_MANIFEST_LEN,
@@ -44,6 +45,9 @@ pub struct Bundle {
     index: HashMap<String, usize>,
     shapes: Shapes,
     file_sha256: String,
+    /// Where the data section ends: the end of the file, or where the signature block starts.
+    data_end: usize,
+    signature: Option<SignatureBlock>,
 }
 
 impl std::fmt::Debug for Bundle {
@@ -122,9 +126,10 @@ impl Bundle {
             });
         }
         let flags = u32_at(12);
-        if flags != 0 {
+        if flags & !FLAG_SIGNED != 0 {
             return Err(BundleError::UnknownFlags { flags });
         }
+        let signed = flags & FLAG_SIGNED != 0;
         let manifest_len = u64_at(16);
         let data_len = u64_at(24);
         if manifest_len > MAX_MANIFEST_LEN {
@@ -155,6 +160,19 @@ impl Bundle {
                 available: total,
             });
         }
+        let data_end = expected;
+        let expected = if signed {
+            data_end + SIGNATURE_BLOCK_LEN as u64
+        } else {
+            data_end
+        };
+        if total < expected {
+            return Err(BundleError::Truncated {
+                what: "signature block",
+                needed: expected,
+                available: total,
+            });
+        }
         if total > expected {
             return Err(BundleError::SizeMismatch {
                 expected,
@@ -162,6 +180,12 @@ impl Bundle {
             });
         }
         // From here on every offset below `total` fits in usize, because `bytes` holds them.
+        let data_end = data_end as usize;
+        let signature = if signed {
+            Some(SignatureBlock::parse(&bytes[data_end..])?)
+        } else {
+            None
+        };
         let manifest_bytes = &bytes[HEADER_LEN..manifest_end as usize];
         let actual = hex(&Sha256::digest(manifest_bytes));
         let stored = hex(&bytes[32..64]);
@@ -177,16 +201,17 @@ impl Bundle {
 
         let index = check_tensor_index(&manifest, data_len)?;
         let data_start = data_start as usize;
-        let (file_sha256, checked) = hash_file_and_data(&bytes, data_start, |data_sha256| {
-            let actual = hex(&data_sha256);
-            if actual != manifest.data_sha256.to_ascii_lowercase() {
-                return Err(BundleError::DataChecksum {
-                    expected: manifest.data_sha256.clone(),
-                    actual,
-                });
-            }
-            check_values_finite(&manifest, &bytes[data_start..])
-        });
+        let (file_sha256, checked) =
+            hash_file_and_data(&bytes, data_start..data_end, |data_sha256| {
+                let actual = hex(&data_sha256);
+                if actual != manifest.data_sha256.to_ascii_lowercase() {
+                    return Err(BundleError::DataChecksum {
+                        expected: manifest.data_sha256.clone(),
+                        actual,
+                    });
+                }
+                check_values_finite(&manifest, &bytes[data_start..data_end])
+            });
         checked?;
 
         let mut bundle = Bundle {
@@ -199,6 +224,8 @@ impl Bundle {
                 node_outputs: Vec::new(),
             },
             file_sha256: hex(&file_sha256),
+            data_end,
+            signature,
         };
         let shapes = {
             let lookup = |name: &str| bundle.tensor_shape(name);
@@ -216,6 +243,25 @@ impl Bundle {
     /// SHA-256 of the whole file, lower-case hex: the identity of this exact bundle.
     pub fn file_sha256(&self) -> &str {
         &self.file_sha256
+    }
+
+    /// The signature block, when the bundle carries one (parsed, not yet checked against any
+    /// key: see [`super::signature::check_signature`]).
+    pub fn signature(&self) -> Option<&SignatureBlock> {
+        self.signature.as_ref()
+    }
+
+    /// Every byte a signature covers: the whole file up to the signature block.
+    pub fn signed_part(&self) -> &[u8] {
+        &self.bytes[..self.data_end]
+    }
+
+    /// The file's bytes.
+    pub fn into_bytes(self) -> Vec<u8> {
+        match self.bytes {
+            Storage::Owned(v) => v,
+            Storage::Mapped(m) => m.to_vec(),
+        }
     }
 
     /// Size of the bundle file in bytes.
@@ -379,9 +425,8 @@ impl Bundle {
 /// second core would save under a millisecond, not worth taking it from a busy server.
 const PARALLEL_HASH_MIN: usize = 1 << 20;
 
-/// Computes the SHA-256 of the whole file and, with the SHA-256 of the data section (which
-/// starts at `data_start`), runs `check_data`; returns the file digest and `check_data`'s
-/// result.
+/// Computes the SHA-256 of the whole file and, with the SHA-256 of the data section (the
+/// bytes in `data`), runs `check_data`; returns the file digest and `check_data`'s result.
 ///
 /// The two digests cannot share work: the data section's digest starts from SHA-256's initial
 /// state, the file's from the state after the header and manifest, so every data block is
@@ -391,11 +436,11 @@ const PARALLEL_HASH_MIN: usize = 1 << 20;
 /// large bundle on a machine with two free cores.
 fn hash_file_and_data<T: Send>(
     bytes: &[u8],
-    data_start: usize,
+    data: std::ops::Range<usize>,
     check_data: impl FnOnce([u8; 32]) -> T,
 ) -> ([u8; 32], T) {
     let file_digest = || -> [u8; 32] { Sha256::digest(bytes).into() };
-    let data_digest = || -> [u8; 32] { Sha256::digest(&bytes[data_start..]).into() };
+    let data_digest = || -> [u8; 32] { Sha256::digest(&bytes[data.clone()]).into() };
     let parallel = bytes.len() >= PARALLEL_HASH_MIN
         && std::thread::available_parallelism().is_ok_and(|n| n.get() > 1);
     if !parallel {

@@ -29,6 +29,8 @@ pub struct DriftArgs {
     /// Also draw the reference's and the window's bins of the statistics that moved, as SVG.
     #[arg(long, value_name = "FILE.svg")]
     pub plot: Option<PathBuf>,
+    #[command(flatten)]
+    pub tls: super::TlsArgs,
 }
 
 /// Runs `convoy drift`.
@@ -37,7 +39,7 @@ pub struct DriftArgs {
 /// An unreachable server, a refused call, an SVG file that cannot be written.
 pub fn drift(args: &DriftArgs) -> Result<(), CliError> {
     let reply = super::block_on(async {
-        PredictorClient::new(super::connect(&args.server).await?)
+        PredictorClient::new(super::connect(&args.server, &args.tls).await?)
             .drift(api::DriftRequest {
                 model: args.model.clone(),
             })

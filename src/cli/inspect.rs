@@ -7,6 +7,7 @@ use serde::Serialize;
 
 use super::{CliError, with_commas};
 use crate::bundle::manifest::{InputSpec, OutputKind, spelling};
+use crate::bundle::signature::{SignatureProblem, Trust, check_signature};
 use crate::bundle::{Bundle, FORMAT_VERSION};
 use crate::drift::Baseline;
 use crate::engine::{CheckReport, Engine, EngineConfig};
@@ -36,6 +37,18 @@ struct Report<'a> {
     provenance: &'a crate::bundle::manifest::Provenance,
     /// The input-drift reference the bundle carries; null when it carries none.
     drift_baseline: Option<BaselineJson>,
+    /// The bundle's signature; null when it is unsigned.
+    signature: Option<SignatureJson>,
+}
+
+/// A signature as inspect sees it: intact or not. Whether its key is trusted is the server's
+/// decision (setting trusted_keys).
+#[derive(Serialize)]
+struct SignatureJson {
+    /// The signer's key fingerprint (`ed25519:` and 16 hex digits).
+    key: String,
+    /// The signature matches the bundle's bytes.
+    valid: bool,
 }
 
 /// A bundle's drift baseline, as far as inspect reports it.
@@ -104,6 +117,7 @@ pub fn inspect(path: &Path, json: bool) -> Result<(), CliError> {
     let check = engine.replay_check_samples(&bundle);
     let summary = bundle.summary();
     let m = bundle.manifest();
+    let signature_check = check_signature(&bundle, Trust::Embedded);
     let report = Report {
         name: &m.name,
         version: &m.version,
@@ -129,6 +143,10 @@ pub fn inspect(path: &Path, json: bool) -> Result<(), CliError> {
         folded: engine.plan().folded(),
         provenance: &m.provenance,
         drift_baseline: m.drift_baseline.as_ref().map(BaselineJson::of),
+        signature: bundle.signature().map(|block| SignatureJson {
+            key: block.fingerprint(),
+            valid: signature_check.is_ok(),
+        }),
     };
     let text = if json {
         // Plain data: serialising it cannot fail.
@@ -139,11 +157,12 @@ pub fn inspect(path: &Path, json: bool) -> Result<(), CliError> {
     std::io::stdout()
         .write_all(text.as_bytes())
         .map_err(CliError::Stdout)?;
-    match check {
-        Some(r) if !r.passed => Err(CliError::CheckFailed {
+    match (check, signature_check) {
+        (Some(r), _) if !r.passed => Err(CliError::CheckFailed {
             max_abs_error: r.max_abs_error,
             bound: r.bound,
         }),
+        (_, Err(e)) if e != SignatureProblem::Unsigned => Err(e.into()),
         _ => Ok(()),
     }
 }
@@ -168,6 +187,23 @@ fn render_text(r: &Report<'_>) -> String {
         r.file_sha256
     );
     let _ = writeln!(s, "checksums  verified (header, manifest, data)");
+    match &r.signature {
+        None => {
+            let _ = writeln!(s, "signature  none");
+        }
+        Some(sig) => {
+            let _ = writeln!(
+                s,
+                "signature  by {} ({})",
+                sig.key,
+                if sig.valid {
+                    "valid"
+                } else {
+                    "INVALID: the bundle changed after signing"
+                }
+            );
+        }
+    }
     let _ = writeln!(s, "input      {:?}", r.input.shape);
     if let Some(img) = &r.input.image {
         let _ = writeln!(

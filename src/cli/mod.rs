@@ -10,7 +10,12 @@ mod inspect;
 mod predict;
 mod run;
 mod serve;
+mod sign;
+mod tls;
 mod versions;
+
+pub use tls::TlsArgs;
+pub(crate) use tls::connect;
 
 use std::path::PathBuf;
 
@@ -53,6 +58,10 @@ pub enum Command {
     Versions(versions::VersionsArgs),
     /// Show how a served model's recent inputs compare with its reference (input drift).
     Drift(drift::DriftArgs),
+    /// Make a key pair for signing bundles.
+    Key(sign::KeyArgs),
+    /// Sign a bundle in place (rewritten atomically) with a secret key.
+    Sign(sign::SignArgs),
     /// Run a batch from a NumPy file through a bundle and write the raw graph output.
     Run {
         /// The bundle (.cvb) to run.
@@ -118,6 +127,10 @@ pub enum CliError {
     },
     #[error("{0}")]
     Usage(String),
+    #[error(transparent)]
+    Key(#[from] crate::bundle::signature::KeyError),
+    #[error(transparent)]
+    Signature(#[from] crate::bundle::signature::SignatureProblem),
 }
 
 /// `1234567` as `1,234,567`.
@@ -133,32 +146,23 @@ pub(crate) fn with_commas(n: u64) -> String {
     out
 }
 
-/// A channel to a convoy server at `addr` (`host:port`, or a URL with its scheme).
-///
-/// # Errors
-/// [`CliError::Connect`] when the address is not usable or nothing answers there.
-pub(crate) async fn connect(addr: &str) -> Result<tonic::transport::Channel, CliError> {
-    let url = if addr.contains("://") {
-        addr.to_string()
-    } else {
-        format!("http://{addr}")
-    };
-    let failed = |reason: String| CliError::Connect {
-        server: url.clone(),
-        reason,
-    };
-    tonic::transport::Channel::from_shared(url.clone())
-        .map_err(|e| failed(e.to_string()))?
-        .connect()
-        .await
-        .map_err(|e| failed(e.to_string()))
-}
-
 /// A server's refusal, with the status code spelled as the gRPC specification spells it.
 pub(crate) fn rpc_error(status: &tonic::Status) -> CliError {
+    // A transport failure (a TLS alert, a reset connection) is a status whose message is
+    // generic; its reason is in the source chain.
+    let mut message = status.message().to_string();
+    let mut next = std::error::Error::source(status);
+    while let Some(cause) = next {
+        let text = cause.to_string();
+        if !message.contains(&text) {
+            message.push_str(": ");
+            message.push_str(&text);
+        }
+        next = cause.source();
+    }
     CliError::Rpc {
         code: crate::telemetry::code_name(status.code()).to_string(),
-        message: status.message().to_string(),
+        message,
     }
 }
 
@@ -202,6 +206,8 @@ pub fn dispatch(cli: Cli) -> Result<(), CliError> {
         Command::Bench(args) => bench::bench(&args),
         Command::Versions(args) => versions::versions(&args),
         Command::Drift(args) => drift::drift(&args),
+        Command::Key(args) => sign::key(&args),
+        Command::Sign(args) => sign::sign(&args),
         Command::Run {
             bundle,
             input,

@@ -29,6 +29,8 @@ pub struct PredictArgs {
     /// Image files (sent as they are) and .npy files (each row of the first axis is a sample).
     #[arg(required = true)]
     pub files: Vec<PathBuf>,
+    #[command(flatten)]
+    pub tls: super::TlsArgs,
 }
 
 #[derive(Serialize)]
@@ -102,7 +104,7 @@ pub fn predict(args: &PredictArgs) -> Result<(), CliError> {
         samples.extend(s);
     }
     let reply = super::block_on(async {
-        let mut client = PredictorClient::new(super::connect(&args.server).await?)
+        let mut client = PredictorClient::new(super::connect(&args.server, &args.tls).await?)
             .max_decoding_message_size(64 << 20)
             .max_encoding_message_size(64 << 20);
         client

@@ -45,6 +45,42 @@ pub struct ServeArgs {
     /// CONVOY_CONTROL_TOKEN).
     #[arg(long, env = "CONVOY_CONTROL_TOKEN_FILE")]
     pub control_token_file: Option<PathBuf>,
+    #[command(flatten)]
+    pub security: SecurityArgs,
+}
+
+/// TLS and signature flags of `convoy serve` (keys tls_* and trusted_keys of the settings).
+#[derive(Clone, Debug, clap::Args)]
+pub struct SecurityArgs {
+    /// PEM certificate chain: serve both gRPC ports over TLS (with --tls-key-file).
+    #[arg(long, env = "CONVOY_TLS_CERT_FILE", value_name = "FILE")]
+    pub tls_cert_file: Option<PathBuf>,
+    /// PEM private key of --tls-cert-file.
+    #[arg(long, env = "CONVOY_TLS_KEY_FILE", value_name = "FILE")]
+    pub tls_key_file: Option<PathBuf>,
+    /// PEM certificate authority: clients must present a certificate it signed.
+    #[arg(long, env = "CONVOY_TLS_CLIENT_CA_FILE", value_name = "FILE")]
+    pub tls_client_ca_file: Option<PathBuf>,
+    /// Load only bundles signed by this public key (repeatable; adds to trusted_keys).
+    #[arg(long = "trusted-key", value_name = "FILE")]
+    pub trusted_keys: Vec<PathBuf>,
+}
+
+impl SecurityArgs {
+    fn apply(&self, config: &mut ServeConfig) {
+        for (flag, key) in [
+            (&self.tls_cert_file, &mut config.tls_cert_file),
+            (&self.tls_key_file, &mut config.tls_key_file),
+            (&self.tls_client_ca_file, &mut config.tls_client_ca_file),
+        ] {
+            if let Some(path) = flag {
+                *key = Some(path.clone());
+            }
+        }
+        config
+            .trusted_keys
+            .extend(self.trusted_keys.iter().cloned());
+    }
 }
 
 fn parse_pin(s: &str) -> Result<(String, String), String> {
@@ -83,6 +119,7 @@ fn resolve(args: &ServeArgs) -> Result<ServeConfig, CliError> {
     if let Some(f) = &args.control_token_file {
         config.control_token_file = Some(f.clone());
     }
+    args.security.apply(&mut config);
     // The token itself only from the environment, never from a flag (flags show in `ps`).
     if let Ok(t) = std::env::var("CONVOY_CONTROL_TOKEN")
         && !t.trim().is_empty()

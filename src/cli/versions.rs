@@ -20,6 +20,8 @@ pub struct VersionsArgs {
     /// Print JSON instead of text.
     #[arg(long, global = true)]
     pub json: bool,
+    #[command(flatten)]
+    pub tls: super::TlsArgs,
 }
 
 /// Where the control service is and how to prove the right to use it.
@@ -97,16 +99,16 @@ fn token(target: &ControlTarget) -> Result<String, CliError> {
 pub fn versions(args: &VersionsArgs) -> Result<(), CliError> {
     super::block_on(async {
         match &args.action {
-            Action::List { server } => list(server, args.json).await,
+            Action::List { server } => list(server, &args.tls, args.json).await,
             action => {
-                let report = control_call(action).await?;
+                let report = control_call(action, &args.tls).await?;
                 print_report(&report, args.json)
             }
         }
     })
 }
 
-async fn control_call(action: &Action) -> Result<pb::ChangeReport, CliError> {
+async fn control_call(action: &Action, tls: &super::TlsArgs) -> Result<pb::ChangeReport, CliError> {
     let target = match action {
         Action::Activate { target, .. }
         | Action::Follow { target, .. }
@@ -124,7 +126,7 @@ async fn control_call(action: &Action) -> Result<pb::ChangeReport, CliError> {
             .parse()
             .map_err(|_| CliError::Usage("the control token must be printable ASCII".into()))?;
     let mut client = ControlClient::with_interceptor(
-        super::connect(&target.control).await?,
+        super::connect(&target.control, tls).await?,
         move |mut req: tonic::Request<()>| {
             req.metadata_mut().insert("authorization", bearer.clone());
             Ok(req)
@@ -292,8 +294,8 @@ pub fn report_text(r: &pb::ChangeReport) -> String {
     out
 }
 
-async fn list(server: &str, json: bool) -> Result<(), CliError> {
-    let mut client = PredictorClient::new(super::connect(server).await?);
+async fn list(server: &str, tls: &super::TlsArgs, json: bool) -> Result<(), CliError> {
+    let mut client = PredictorClient::new(super::connect(server, tls).await?);
     let cat = client
         .catalog(api::CatalogRequest {})
         .await

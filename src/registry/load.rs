@@ -1,7 +1,8 @@
 //! Loading one version: the steps a bundle passes before it may answer, and why one was refused.
 //!
 //! read (the caller's file I/O) → verify (structure and checksums, [`Bundle::from_bytes`]) →
-//! plan ([`Engine::new`]) → check samples (replayed; the stored outputs must come back) →
+//! signature (only when trusted keys are set: signed by one of them,
+//! [`crate::bundle::signature::check_signature`]) → plan ([`Engine::new`]) → check samples (replayed; the stored outputs must come back) →
 //! warm up (one batch at each size the scheduler will use, so the first real request does not
 //! pay for workspace allocation). A version that passes every step is a [`ModelVersion`];
 //! one that fails is a [`Refusal`] naming the step.
@@ -10,6 +11,7 @@ use std::sync::atomic::AtomicBool;
 use std::time::Instant;
 
 use super::ModelVersion;
+use crate::bundle::signature::{PublicKey, Trust, check_signature};
 use crate::bundle::{Bundle, BundleError, peek_identity};
 use crate::drift::{Monitor, WindowConfig};
 use crate::engine::{Engine, EngineConfig, RunOptions};
@@ -22,6 +24,9 @@ pub enum LoadStep {
     Read,
     /// The bytes are not a valid bundle: truncated, a checksum mismatch, an unknown op.
     Verify,
+    /// Trusted keys are set and the bundle is unsigned, signed by another key, or its
+    /// signature does not verify.
+    Signature,
     /// The engine could not plan it for this CPU.
     Plan,
     /// Replaying its check samples did not give the stored outputs.
@@ -33,9 +38,10 @@ pub enum LoadStep {
 }
 
 impl LoadStep {
-    pub const ALL: [LoadStep; 6] = [
+    pub const ALL: [LoadStep; 7] = [
         LoadStep::Read,
         LoadStep::Verify,
+        LoadStep::Signature,
         LoadStep::Plan,
         LoadStep::CheckSamples,
         LoadStep::WarmUp,
@@ -46,6 +52,7 @@ impl LoadStep {
         match self {
             LoadStep::Read => "read",
             LoadStep::Verify => "verify",
+            LoadStep::Signature => "signature",
             LoadStep::Plan => "plan",
             LoadStep::CheckSamples => "check_samples",
             LoadStep::WarmUp => "warm_up",
@@ -86,6 +93,8 @@ pub struct LoadSettings {
     /// The drift window of versions whose bundle carries a reference; `None`: drift
     /// monitoring off.
     pub drift: Option<WindowConfig>,
+    /// When not empty, only bundles signed by one of these keys are loaded.
+    pub trusted_keys: Vec<PublicKey>,
 }
 
 impl Default for LoadSettings {
@@ -94,6 +103,7 @@ impl Default for LoadSettings {
             engine: EngineConfig::default(),
             warm_up_batches: vec![1],
             drift: Some(WindowConfig::default()),
+            trusted_keys: Vec::new(),
         }
     }
 }
@@ -150,6 +160,11 @@ fn verify_refusal(e: &BundleError) -> Refusal {
 }
 
 fn build(bundle: &Bundle, origin: &str, settings: &LoadSettings) -> Result<ModelVersion, Refusal> {
+    if !settings.trusted_keys.is_empty() {
+        let signer = check_signature(bundle, Trust::Keys(&settings.trusted_keys))
+            .map_err(|e| Refusal::new(LoadStep::Signature, e.to_string()))?;
+        tracing::debug!(model = %bundle.manifest().name, version = %bundle.manifest().version, %signer, "signature verified");
+    }
     let engine = Engine::new(bundle, &settings.engine)
         .map_err(|e| Refusal::new(LoadStep::Plan, e.to_string()))?;
     if let Some(r) = engine.replay_check_samples(bundle)

@@ -37,6 +37,20 @@ pub struct ServeConfig {
     pub max_image_pixels: u64,
     /// Requests of one stream computed at the same time.
     pub stream_concurrency: usize,
+    /// HTTP/2 streams (calls) open at once on one client connection; further calls of that
+    /// connection wait for one to end.
+    pub max_streams_per_connection: u32,
+    /// PEM certificate chain of both gRPC ports (predict and control); with `tls_key_file`,
+    /// turns TLS on.
+    pub tls_cert_file: Option<PathBuf>,
+    /// PEM private key of `tls_cert_file`.
+    pub tls_key_file: Option<PathBuf>,
+    /// PEM certificate(s) of the authority that signs client certificates: when set, every
+    /// client must present a certificate it signed (mutual TLS).
+    pub tls_client_ca_file: Option<PathBuf>,
+    /// Public key files (`convoy key new`); when any is set, only bundles signed by one of
+    /// them are loaded.
+    pub trusted_keys: Vec<PathBuf>,
     /// Watch the models folder with the operating system's change notifications.
     pub watch_models: bool,
     /// Also look at the models folder this often, in milliseconds (for file systems without
@@ -90,6 +104,14 @@ impl Default for ServeConfig {
             max_image_bytes: 16 << 20,
             max_image_pixels: 40_000_000,
             stream_concurrency: 16,
+            // Enough for a client multiplexing many callers over one connection (the bench's
+            // closed loop uses up to this many), few enough that one connection cannot hold an
+            // unbounded number of calls' buffers; more callers can open more connections.
+            max_streams_per_connection: 64,
+            tls_cert_file: None,
+            tls_key_file: None,
+            tls_client_ca_file: None,
+            trusted_keys: Vec::new(),
             watch_models: true,
             // Notifications usually come first; a scan is a folder listing and one stat per
             // file, cheap enough every two seconds.
@@ -187,6 +209,33 @@ impl ServeConfig {
                 problem: "at most 1024".into(),
             });
         }
+        if self.max_streams_per_connection == 0 {
+            return Err(ConfigError::Invalid {
+                key: "max_streams_per_connection",
+                problem: "must be at least 1".into(),
+            });
+        }
+        match (&self.tls_cert_file, &self.tls_key_file) {
+            (Some(_), None) => {
+                return Err(ConfigError::Invalid {
+                    key: "tls_key_file",
+                    problem: "tls_cert_file is set, its private key is not".into(),
+                });
+            }
+            (None, Some(_)) => {
+                return Err(ConfigError::Invalid {
+                    key: "tls_cert_file",
+                    problem: "tls_key_file is set, the certificate is not".into(),
+                });
+            }
+            _ => {}
+        }
+        if self.tls_client_ca_file.is_some() && self.tls_cert_file.is_none() {
+            return Err(ConfigError::Invalid {
+                key: "tls_client_ca_file",
+                problem: "client certificates need TLS: set tls_cert_file and tls_key_file".into(),
+            });
+        }
         if self.max_image_pixels == 0 {
             return Err(ConfigError::Invalid {
                 key: "max_image_pixels",
@@ -232,6 +281,11 @@ impl ServeConfig {
             }
         }
         Ok(())
+    }
+
+    /// Whether both gRPC ports use TLS.
+    pub fn tls_enabled(&self) -> bool {
+        self.tls_cert_file.is_some() && self.tls_key_file.is_some()
     }
 
     /// The control token: `control_token` if set, else the first line of

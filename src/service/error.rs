@@ -18,7 +18,7 @@ pub enum ServiceError {
         "{count} samples exceed the limit of {limit} per request (setting max_samples_per_request)"
     )]
     TooManySamples { count: usize, limit: usize },
-    #[error("sample {index}: {source}")]
+    #[error("sample {index}: {source}{}", limit_setting(source))]
     Sample { index: usize, source: PrepareError },
     #[error("sample {index}: empty sample (set encoded_image or tensor)")]
     EmptySample { index: usize },
@@ -46,9 +46,10 @@ impl ServiceError {
             ServiceError::NoSamples | ServiceError::EmptySample { .. } => Code::InvalidArgument,
             ServiceError::TooManySamples { .. } => Code::ResourceExhausted,
             ServiceError::Sample { source, .. } => match source {
-                PrepareError::EncodedTooLarge { .. } | PrepareError::TooManyPixels { .. } => {
-                    Code::ResourceExhausted
-                }
+                PrepareError::EncodedTooLarge { .. }
+                | PrepareError::TooManyPixels { .. }
+                | PrepareError::ResizeTooLarge { .. }
+                | PrepareError::DecoderLimit { .. } => Code::ResourceExhausted,
                 _ => Code::InvalidArgument,
             },
             ServiceError::Submit(SubmitError::Full { .. }) => Code::ResourceExhausted,
@@ -63,6 +64,19 @@ impl ServiceError {
             ServiceError::ShuttingDown => Code::Unavailable,
             ServiceError::Compute(_) | ServiceError::Internal(_) => Code::Internal,
         }
+    }
+}
+
+/// The setting a sample's limit comes from, for the client's message (the preparation code
+/// knows the limit's value, not what the server calls it).
+fn limit_setting(e: &PrepareError) -> &'static str {
+    match e {
+        PrepareError::EncodedTooLarge { .. } => " (setting max_image_bytes)",
+        // The decoder's memory budget is derived from max_image_pixels (prepare::decode).
+        PrepareError::TooManyPixels { .. }
+        | PrepareError::ResizeTooLarge { .. }
+        | PrepareError::DecoderLimit { .. } => " (setting max_image_pixels)",
+        _ => "",
     }
 }
 

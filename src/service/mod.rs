@@ -6,13 +6,15 @@
 //!
 //! [`start`] loads the models (through [`crate::rollout`], which also keeps watching the models
 //! folder and serves the control service when configured), binds, and serves until the
-//! returned handle is shut down.
+//! returned handle is shut down. Both ports share [`tls`]'s transport settings: TLS or mutual
+//! TLS when configured, and the per-connection stream limit.
 
 pub mod api;
 pub mod config;
 pub mod drain;
 pub mod error;
 pub mod predictor;
+pub mod tls;
 
 use std::net::SocketAddr;
 use std::sync::Arc;
@@ -62,6 +64,23 @@ pub enum StartError {
     Reflection(String),
     #[error(transparent)]
     Telemetry(#[from] TelemetryError),
+    #[error("TLS file {path}: {problem}")]
+    TlsFile {
+        path: std::path::PathBuf,
+        problem: String,
+    },
+    #[error("TLS identity ({cert}, {key}) refused: {reason}")]
+    TlsSetup {
+        cert: std::path::PathBuf,
+        key: std::path::PathBuf,
+        reason: String,
+    },
+    #[error(
+        "the control service would listen on {addr}, beyond loopback, without TLS: its bearer token would cross the network in clear; set tls_cert_file and tls_key_file, or a loopback control_listen"
+    )]
+    ControlInClear { addr: SocketAddr },
+    #[error("trusted_keys: {0}")]
+    TrustedKey(#[from] crate::bundle::signature::KeyError),
 }
 
 /// A running server.
@@ -266,6 +285,14 @@ fn fix_oversize_status(headers: &mut http::HeaderMap) {
     });
     if out_of_range && oversize {
         headers.insert("grpc-status", http::HeaderValue::from_static("8"));
+        // Every limit's message names its setting; the transport's does not know ours.
+        if let Some(v) = headers.get("grpc-message") {
+            let mut named = v.as_bytes().to_vec();
+            named.extend_from_slice(b"%20(setting%20max_message_bytes)");
+            if let Ok(v) = http::HeaderValue::from_bytes(&named) {
+                headers.insert("grpc-message", v);
+            }
+        }
     }
 }
 
@@ -273,9 +300,15 @@ fn fix_oversize_status(headers: &mut http::HeaderMap) {
 /// models folder watched and, when configured, the control service on `config.control_listen`.
 ///
 /// # Errors
-/// Invalid settings, an address that cannot be bound, an unreadable models folder.
+/// Invalid settings, an address that cannot be bound, an unreadable models folder, an
+/// unreadable or invalid TLS or trusted key file, a control service beyond loopback without
+/// TLS.
 pub async fn start(config: &ServeConfig) -> Result<RunningServer, StartError> {
     config.validate()?;
+    // Security settings first: a bad file must stop the server before it loads or binds.
+    tls::check_control_exposure(config)?;
+    let transport = tls::server_builder(config)?;
+    let trusted_keys = tls::trusted_keys(config)?;
     let telemetry = telemetry::install(config.metrics_listen)?;
     let registry = Arc::new(Registry::new(
         LoadSettings {
@@ -290,6 +323,7 @@ pub async fn start(config: &ServeConfig) -> Result<RunningServer, StartError> {
                 capacity: config.drift_window,
                 ..WindowConfig::default()
             }),
+            trusted_keys,
         },
         Policy {
             pins: config.pinned_versions.clone(),
@@ -371,15 +405,23 @@ pub async fn start(config: &ServeConfig) -> Result<RunningServer, StartError> {
         let listener = bind(config.control_listen).await?;
         let addr = local_addr_of(&listener, config.control_listen)?;
         if !addr.ip().is_loopback() {
-            tracing::warn!(%addr, "the control service listens beyond loopback; its token is its only guard");
+            // Reached only with TLS (tls::check_control_exposure): the token is encrypted,
+            // but whoever holds it can still change what is served.
+            tracing::warn!(%addr, "the control service listens beyond loopback (TLS); its token is its only guard");
         }
-        Some(serve_control(listener, addr, Arc::clone(&rollout), &token)?)
+        Some(serve_control(
+            transport.clone(),
+            listener,
+            addr,
+            Arc::clone(&rollout),
+            &token,
+        )?)
     } else {
         None
     };
     let (tx, rx) = oneshot::channel::<()>();
     let task = tokio::spawn(
-        tonic::transport::Server::builder()
+        transport
             .layer(tower::util::MapResponseLayer::new(
                 oversize_is_resource_exhausted,
             ))
@@ -432,6 +474,7 @@ struct ControlServer {
 }
 
 fn serve_control(
+    mut transport: tonic::transport::Server,
     listener: TcpListener,
     addr: SocketAddr,
     rollout: Arc<Rollout>,
@@ -447,7 +490,7 @@ fn serve_control(
         .map_err(|e| StartError::Reflection(e.to_string()))?;
     let (tx, rx) = oneshot::channel::<()>();
     let task = tokio::spawn(
-        tonic::transport::Server::builder()
+        transport
             .add_service(service)
             .add_service(reflection)
             .serve_with_incoming_shutdown(
