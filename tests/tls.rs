@@ -466,6 +466,23 @@ async fn client_commands_speak_tls() {
     args.extend(tls.clone());
     let out = run(args).await.unwrap();
     assert!(out.status.success(), "{out:?}");
+    // The load generator too: every request of a short run answered over mutual TLS.
+    let mut args = vec![
+        "bench".to_string(),
+        "--server".into(),
+        addr.clone(),
+        "--duration".into(),
+        "0.5".into(),
+        "--concurrency".into(),
+        "2".into(),
+        "--json".into(),
+    ];
+    args.extend(tls.clone());
+    let out = run(args).await.unwrap();
+    assert!(out.status.success(), "{out:?}");
+    let report: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert!(report["ok"].as_u64().unwrap() > 0, "{report}");
+    assert_eq!(report["ok"], report["requests"], "{report}");
     // Without the client certificate the server refuses; the reason reaches the user.
     let args = vec![
         "predict".to_string(),

@@ -59,6 +59,8 @@ pub struct BenchArgs {
     /// Print one JSON object instead of text.
     #[arg(long)]
     pub json: bool,
+    #[command(flatten)]
+    pub tls: super::TlsArgs,
     /// Also draw the latency distribution into this SVG file.
     #[arg(long, value_name = "FILE.svg")]
     pub plot: Option<PathBuf>,
@@ -122,8 +124,10 @@ fn bench_server(args: &BenchArgs) -> Result<(), CliError> {
         (None, Some(path)) => InputSource::Tensors(path.clone()),
         (None, None) => InputSource::Random { seed: args.seed },
     };
+    let (server, tls) = super::tls::url_and_tls(&args.server, &args.tls)?;
     let config = LoadConfig {
-        server: args.server.clone(),
+        server,
+        tls,
         model: args.model.clone(),
         version: args.version.clone(),
         pace,

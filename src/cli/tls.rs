@@ -77,6 +77,28 @@ impl TlsArgs {
 /// TLS reason, when the handshake failed); [`CliError::Usage`] for TLS flags with an
 /// `http://` address.
 pub(crate) async fn connect(addr: &str, tls: &TlsArgs) -> Result<Channel, CliError> {
+    let (url, client_tls) = url_and_tls(addr, tls)?;
+    let failed = |reason: String| CliError::Connect {
+        server: url.clone(),
+        reason,
+    };
+    let mut endpoint = Endpoint::from_shared(url.clone()).map_err(|e| failed(chain(&e)))?;
+    if let Some(config) = client_tls {
+        endpoint = endpoint.tls_config(config).map_err(|e| failed(chain(&e)))?;
+    }
+    endpoint.connect().await.map_err(|e| failed(chain(&e)))
+}
+
+/// The URL to call for `addr` (a scheme added when it has none: `https://` when any TLS flag
+/// is given), and the client's TLS settings when that URL is `https://`.
+///
+/// # Errors
+/// [`CliError::Usage`] for TLS flags with an `http://` address; the errors of
+/// [`TlsArgs::client_config`].
+pub(crate) fn url_and_tls(
+    addr: &str,
+    tls: &TlsArgs,
+) -> Result<(String, Option<ClientTlsConfig>), CliError> {
     let url = if addr.contains("://") {
         addr.to_string()
     } else if tls.any() {
@@ -84,21 +106,16 @@ pub(crate) async fn connect(addr: &str, tls: &TlsArgs) -> Result<Channel, CliErr
     } else {
         format!("http://{addr}")
     };
-    let failed = |reason: String| CliError::Connect {
-        server: url.clone(),
-        reason,
-    };
-    let mut endpoint = Endpoint::from_shared(url.clone()).map_err(|e| failed(chain(&e)))?;
     if url.starts_with("https://") {
-        endpoint = endpoint
-            .tls_config(tls.client_config()?)
-            .map_err(|e| failed(chain(&e)))?;
+        let config = tls.client_config()?;
+        Ok((url, Some(config)))
     } else if tls.any() {
-        return Err(CliError::Usage(format!(
+        Err(CliError::Usage(format!(
             "--tls-* flags need TLS, but {url} is plain text: use https:// or host:port"
-        )));
+        )))
+    } else {
+        Ok((url, None))
     }
-    endpoint.connect().await.map_err(|e| failed(chain(&e)))
 }
 
 /// An error and its sources on one line: tonic's transport error says only "transport error";

@@ -189,7 +189,10 @@ fn chain(e: &dyn std::error::Error) -> String {
     s
 }
 
-async fn connect(server: &str) -> Result<PredictorClient<Channel>, LoadgenError> {
+async fn connect(
+    server: &str,
+    tls: Option<&tonic::transport::ClientTlsConfig>,
+) -> Result<PredictorClient<Channel>, LoadgenError> {
     let url = if server.contains("://") {
         server.to_string()
     } else {
@@ -199,6 +202,15 @@ async fn connect(server: &str) -> Result<PredictorClient<Channel>, LoadgenError>
         address: server.to_string(),
         reason: chain(&e),
     })?;
+    let endpoint = match tls {
+        Some(config) => endpoint
+            .tls_config(config.clone())
+            .map_err(|e| LoadgenError::Connect {
+                server: url.clone(),
+                reason: chain(&e),
+            })?,
+        None => endpoint,
+    };
     let channel = endpoint
         .connect_timeout(CONNECT_TIMEOUT)
         .connect()
@@ -297,7 +309,7 @@ where
     P: FnMut(&Progress) + Send + 'static,
 {
     config.validate()?;
-    let mut client = connect(&config.server).await?;
+    let mut client = connect(&config.server, config.tls.as_ref()).await?;
     // Inputs are read before any request is in flight, so blocking file I/O here holds up
     // nothing else.
     let samples = match &config.inputs {

@@ -82,6 +82,8 @@ pub struct LoadConfig {
     pub timeout: Duration,
     /// Open loop only: requests in flight at once.
     pub max_in_flight: usize,
+    /// TLS settings for an `https://` server; none: plain text.
+    pub tls: Option<tonic::transport::ClientTlsConfig>,
 }
 
 impl Default for LoadConfig {
@@ -98,6 +100,7 @@ impl Default for LoadConfig {
             inputs: InputSource::Random { seed: 1 },
             timeout: Duration::from_secs(30),
             max_in_flight: MAX_IN_FLIGHT,
+            tls: None,
         }
     }
 }
