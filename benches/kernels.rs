@@ -26,7 +26,9 @@
 //! a few repetitions, like the peak's fastest slice; criterion's estimates are the record),
 //! then the network's aggregate: all its 3x3 convolutions' FLOPs (stem, 6 at stage 1, the
 //! strided first of stage 2 and 5 more, the same at stage 3) over their summed times. After
-//! the ResNet-20 group the same aggregate is printed from criterion's mean per layer.
+//! the ResNet-20 group the same figures are printed from criterion's median per layer (the
+//! record), against criterion's median of `fma_peak/<isa>` when the filter let it run in the
+//! same process (include `fma_peak` in the filter for medians against medians).
 
 use std::hint::black_box;
 use std::time::Duration;
@@ -257,9 +259,14 @@ fn bench_fma_peak(c: &mut Criterion) {
     for isa in isas() {
         let (_, flops) = fma_batch(isa);
         group.throughput(Throughput::Elements(flops));
+        let mut ran = false;
         group.bench_function(isa.name(), |bench| {
+            ran = true;
             bench.iter(|| black_box(fma_batch(black_box(isa))))
         });
+        if ran && let Ok(mut v) = PEAK_MEASURED.lock() {
+            v.push(isa);
+        }
     }
     group.finish();
 }
@@ -448,31 +455,64 @@ fn print_peak_summary() -> Vec<(Isa, f64)> {
     peaks
 }
 
-/// Criterion's mean time per iteration of one benchmark, in seconds, from the estimates it
-/// has just written (`target/criterion/<group>/<id>/new/estimates.json`); `None` if absent.
-fn criterion_mean_secs(group: &str, layer: &str, id: &str) -> Option<f64> {
+/// Criterion's median time per iteration of one benchmark (`<group>/<id>`), in seconds, from
+/// the estimates it has just written (`target/criterion/<group>/<id>/new/estimates.json`);
+/// `None` if absent. Medians, not means: on a shared machine other processes' bursts land in
+/// a few samples, which drag the mean and hardly move the median.
+fn criterion_median_secs(bench: &str) -> Option<f64> {
     let dir = std::env::var("CARGO_TARGET_DIR").unwrap_or_else(|_| "target".into());
-    let path = format!("{dir}/criterion/{group}/{layer}/{id}/new/estimates.json");
+    let path = format!("{dir}/criterion/{bench}/new/estimates.json");
     let text = std::fs::read_to_string(path).ok()?;
     let v: serde_json::Value = serde_json::from_str(&text).ok()?;
-    Some(v["mean"]["point_estimate"].as_f64()? / 1e9)
+    Some(v["median"]["point_estimate"].as_f64()? / 1e9)
 }
 
-/// The aggregate again, from criterion's per-layer results (the record), for every route
-/// whose layers were all measured in this run (`measured`: layer and id pairs).
+/// Instruction sets whose `fma_peak` criterion benchmark ran in this process (its estimates
+/// on disk are then this run's, not an earlier one's).
+static PEAK_MEASURED: std::sync::Mutex<Vec<Isa>> = std::sync::Mutex::new(Vec::new());
+
+/// The aggregate again, from criterion's per-layer medians (the record), for every route whose
+/// layers were all measured in this run (`measured`: layer and id pairs), against criterion's
+/// median of `fma_peak` when that ran too (medians against medians), else against the summary's
+/// fastest-slice peak.
 fn print_criterion_aggregate(peaks: &[(Isa, f64)], measured: &[(&str, String)]) {
-    for &(isa, peak) in peaks {
+    for &(isa, summary_peak) in peaks {
+        let peak_ran = PEAK_MEASURED
+            .lock()
+            .map(|v| v.contains(&isa))
+            .unwrap_or(false);
+        let criterion_peak = peak_ran
+            .then(|| criterion_median_secs(&format!("fma_peak/{isa}")))
+            .flatten()
+            .map(|t| fma_batch(isa).1 as f64 / t / 1e9);
+        let (peak, which) = match criterion_peak {
+            Some(p) => (p, "criterion median of fma_peak"),
+            None => (summary_peak, "summary's fastest-slice peak"),
+        };
+        eprintln!("criterion medians against {which}: {peak:.1} GFLOP/s ({isa})");
         for suffix in ["", "_packed"] {
             let id = format!("{isa}{suffix}");
             let secs: Option<Vec<f64>> = RESNET20_3X3
                 .iter()
                 .map(|l| {
                     let ran = measured.iter().any(|(m, i)| *m == l.id && *i == id);
-                    ran.then(|| criterion_mean_secs("resnet20_conv3x3_b32", l.id, &id))
-                        .flatten()
+                    ran.then(|| {
+                        criterion_median_secs(&format!("resnet20_conv3x3_b32/{}/{id}", l.id))
+                    })
+                    .flatten()
                 })
                 .collect();
             if let Some(secs) = secs {
+                for (l, &t) in RESNET20_3X3.iter().zip(&secs) {
+                    let g = conv(l.in_c, l.hw, 3, l.stride);
+                    let f = (2 * l.out_c * l.in_c * 9 * g.out_h * g.out_w * BATCH) as f64;
+                    eprintln!(
+                        "criterion {:<30} {id:<14} {:7.1} GFLOP/s  {:5.1} % of peak",
+                        l.id,
+                        f / t / 1e9,
+                        100.0 * f / t / 1e9 / peak
+                    );
+                }
                 let agg = aggregate_gflops(&secs);
                 eprintln!(
                     "criterion resnet20 3x3 aggregate {id:<14} {agg:7.1} GFLOP/s  {:5.1} % of peak",

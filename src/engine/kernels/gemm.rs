@@ -8,8 +8,10 @@
 //! cheap activations in registers.
 //!
 //! A convolution's im2col has a second route ([`Im2colAlgo::Direct`], module `direct`): a
-//! zero-padded copy of the input per call (one, or one per kernel column), read by the
-//! microkernels through a per-`k` offset table, with no packed B panels; [`Im2colAlgo::Auto`] picks it where it pays off.
+//! zero-padded copy of the input per call (one, or one per kernel column; with AVX-512 at
+//! stride 1, a plain copy whose padding columns masked loads supply), read by the
+//! microkernels through a per-`k` offset table, with no packed B panels;
+//! [`Im2colAlgo::Auto`] picks it where it pays off.
 //!
 //! Batch invariance: every output element is `acc = 0; for k in 0..K { acc = fma(a, b, acc) }`,
 //! then `+ bias`, then `+ residual`, then the activation, whichever kernel, tile, block, column
@@ -214,7 +216,8 @@ pub enum Im2colAlgo {
     /// Direct where it pays off, else packed (the default; the rule is `Layout::pays_off` in
     /// `gemm/direct.rs`, measured: direct whenever it copies at most 2/3 of what the packed
     /// route would, which holds for 3x3 convolutions at stride 1, and at stride 2 where
-    /// the pitched layout suits the shape (16 outputs per row and up), not for strided 1x1).
+    /// the pitched layout suits the shape (16 outputs per row and up), not for strided 1x1;
+    /// the rows layout, where the instruction set has cheap masked loads, always).
     #[default]
     Auto,
     /// Pack B into column panels per block of columns (any geometry; best where the direct
@@ -483,7 +486,7 @@ unsafe fn run<S: Simd, const MR: usize, const NV: usize, const VM: usize, const 
 ) {
     if let BSource::Im2col { input, geom, c0 } = *job.b {
         let channels = job.a.k / (geom.kh * geom.kw);
-        let lay = direct::Layout::new(&geom, channels);
+        let lay = direct::Layout::new(&geom, channels, S::FAST_MASKED_LOAD);
         let take = match scratch.algo {
             Im2colAlgo::Auto => lay.pays_off(&geom, channels),
             Im2colAlgo::Packed => false,

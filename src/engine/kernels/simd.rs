@@ -49,6 +49,28 @@ pub(crate) trait Simd: Copy {
     /// # Safety
     /// `p` must be valid for writing `n <= LANES` floats; nothing past them is touched.
     unsafe fn store_partial(self, p: *mut f32, v: Self::V, n: usize);
+    /// Whether [`Simd::load_masked`] costs no more than [`Simd::load`] (AVX-512's zero-masking
+    /// loads): the direct convolution route relies on it for its copy-once layout only then.
+    const FAST_MASKED_LOAD: bool = false;
+    /// Loads lane `l` from `p + l` where bit `l` of `mask` is set, +0.0 in the others.
+    ///
+    /// The default goes through memory lane by lane (correct anywhere, slow: see
+    /// [`Simd::FAST_MASKED_LOAD`]).
+    ///
+    /// # Safety
+    /// `p` must be valid for reading `LANES` floats (no alignment needed).
+    #[inline(always)]
+    unsafe fn load_masked(self, p: *const f32, mask: u32) -> Self::V {
+        let mut lanes = [0.0f32; 16];
+        for (l, x) in lanes.iter_mut().enumerate().take(Self::LANES) {
+            if (mask >> l) & 1 == 1 {
+                // SAFETY: lane `l < LANES` of the caller's readable run.
+                *x = unsafe { p.add(l).read_unaligned() };
+            }
+        }
+        // SAFETY: `lanes` holds 16 >= LANES floats (every set has at most 16 lanes).
+        unsafe { self.load(lanes.as_ptr()) }
+    }
     /// Loads `p[0], p[2], .., p[2*(LANES-1)]`.
     ///
     /// # Safety
@@ -282,6 +304,13 @@ mod tests {
                 for i in 0..l {
                     let e = if i < n { xs[2 + i] } else { -1.0 };
                     assert_eq!(dst[i].to_bits(), e.to_bits(), "partial {n} lane {i}");
+                }
+            }
+            for mask in [0u32, 1, 0b1010_0110_0111_0001, (1 << l) - 1, 1 << (l - 1)] {
+                s.store(out.as_mut_ptr(), s.load_masked(xs.as_ptr().add(3), mask));
+                for i in 0..l {
+                    let e = if (mask >> i) & 1 == 1 { xs[3 + i] } else { 0.0 };
+                    assert_eq!(out[i].to_bits(), e.to_bits(), "masked {mask:b} lane {i}");
                 }
             }
             s.store(out.as_mut_ptr(), s.load_even(xs.as_ptr().add(1)));

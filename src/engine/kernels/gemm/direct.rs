@@ -16,6 +16,10 @@
 //! - Pitched (`pitched`): one copy per channel, rows `pitch > out_w` apart so that a row's
 //!   right padding is the next one's left; padding columns are computed and thrown away and
 //!   stores split at every output row. Cheaper to copy; chosen where the waste is small.
+//! - Rows (`rows`): one plain copy per channel between zero rows, the padding columns
+//!   supplied by masked loads ([`super::kernel::tile_masked`]); stride 1 with outputs as wide
+//!   as the input, on instruction sets where a masked load is as cheap as a plain one
+//!   (AVX-512). Cheapest copy, no waste, whole-vector stores: taken wherever it applies.
 //!
 //! The microkernel ([`super::kernel::tile_gather`]) is the usual register tile with B rows
 //! found through `off` instead of at a fixed stride, and the summation order is the contract's
@@ -23,6 +27,7 @@
 //! it), so every route and layout produces the same bits.
 
 pub(super) mod pitched;
+pub(super) mod rows;
 
 use super::super::copy::{copy_even, copy_short, zero_short};
 use super::super::simd::Simd;
@@ -34,12 +39,20 @@ use super::{ConvGeom, GemmScratch, Job};
 pub(super) enum Layout {
     Pitched(pitched::Pitched),
     Planes(Planes),
+    Rows(rows::Rows),
 }
 
 impl Layout {
-    /// The pitched layout where it suits the geometry, else planes (either is correct for
-    /// any geometry).
-    pub(super) fn new(g: &ConvGeom, channels: usize) -> Layout {
+    /// The rows layout where the geometry allows it and `fast_masked_load` (the instruction
+    /// set's [`Simd::FAST_MASKED_LOAD`]), else pitched where it suits the geometry, else
+    /// planes (either is correct for any geometry).
+    pub(super) fn new(g: &ConvGeom, channels: usize, fast_masked_load: bool) -> Layout {
+        if fast_masked_load
+            && let Some(r) = rows::Rows::new(g)
+            && r.buffer_len(channels) <= u32::MAX as usize
+        {
+            return Layout::Rows(r);
+        }
         let p = pitched::Pitched::new(g);
         if p.suits(g, channels) {
             Layout::Pitched(p)
@@ -54,6 +67,8 @@ impl Layout {
             // `suits` already asked for little waste and a small enough buffer.
             Layout::Pitched(_) => true,
             Layout::Planes(p) => p.pays_off(g, channels),
+            // One plain copy of the input: always less than the packed route's nine.
+            Layout::Rows(_) => true,
         }
     }
 
@@ -62,6 +77,7 @@ impl Layout {
         match self {
             Layout::Pitched(p) => p.buffer_len(channels),
             Layout::Planes(p) => p.buffer_len(channels),
+            Layout::Rows(r) => r.buffer_len(channels),
         }
     }
 
@@ -78,6 +94,7 @@ impl Layout {
         match self {
             Layout::Pitched(p) => pitched::prepare(input, g, c0, channels, p, buf),
             Layout::Planes(p) => prepare(input, g, c0, channels, p, buf),
+            Layout::Rows(r) => rows::prepare(input, g, c0, channels, r, buf),
         }
     }
 
@@ -86,6 +103,7 @@ impl Layout {
         match self {
             Layout::Pitched(p) => pitched::offsets(g, p, channels, offs),
             Layout::Planes(p) => offsets(g, p, channels, offs),
+            Layout::Rows(r) => rows::offsets(g, r, channels, offs),
         }
     }
 
@@ -93,7 +111,17 @@ impl Layout {
     pub(super) fn lin(&self, g: &ConvGeom, n: usize) -> usize {
         match self {
             Layout::Pitched(p) => p.lin(g, n),
-            Layout::Planes(_) => n,
+            Layout::Planes(_) | Layout::Rows(_) => n,
+        }
+    }
+
+    /// Whether the microkernel reads element `off[k] + lin(n)` for B row `k`, column `n`
+    /// (else it loads +0.0 there: the rows layout's masked lanes).
+    #[cfg(test)]
+    pub(super) fn reads(&self, g: &ConvGeom, k: usize, n: usize) -> bool {
+        match self {
+            Layout::Rows(_) => rows::Rows::reads(g, k, n),
+            Layout::Pitched(_) | Layout::Planes(_) => true,
         }
     }
 }
@@ -314,6 +342,9 @@ pub(super) unsafe fn run<S: Simd, const MR: usize, const NV: usize>(
     // The pitched layout's store pieces depend on the tile only, not on the A panel: worked
     // out once per tile rather than once per panel.
     let mut list = [pitched::Piece::default(); pitched::MAX_PIECES];
+    // The rows layout's lane masks, likewise per tile.
+    let mut masks = [0u32; rows::MASKS];
+    let mut masks_for = (usize::MAX, 0);
     let mut t = lo;
     while t < hi {
         // The vectors left, split evenly over the fewest tiles that hold them: 4 vectors
@@ -329,19 +360,55 @@ pub(super) unsafe fn run<S: Simd, const MR: usize, const NV: usize>(
                 &mut list,
             ),
             Layout::Planes(_) => 0,
+            Layout::Rows(_) => {
+                // The masks depend on the tile's first output column and width only: at 16
+                // or 32 outputs per row every tile (or every other) repeats the last one's.
+                let key = (t % g.out_w, nv);
+                if key != masks_for {
+                    rows::masks(g, (t, nv, S::LANES), &mut masks);
+                    masks_for = key;
+                }
+                0
+            }
         };
         for ap in 0..a_panels {
             let rows = (ap * MR, MR.min(m - ap * MR));
             // SAFETY: panel `ap` exists; B reads are inside the buffer (checked above); the
-            // stored columns are those of `job.cols` (caller's bounds).
+            // rows layout's masks hold `kw * nv` entries for this tile and its offsets step
+            // by `dil_w` along a kernel row (`rows::offsets`); the stored columns are those
+            // of `job.cols` (caller's bounds).
             unsafe {
                 let a_ptr = a_base.add(ap * k * MR);
                 let b_ptr = b_base.add(t);
                 macro_rules! tile_nv {
                     ($nv:literal) => {{
-                        let acc = kernel::tile_gather::<S, MR, $nv>(s, k, a_ptr, b_ptr, offs);
+                        let acc = match lay {
+                            // 3 kernel columns: the unrolled kernel (the rows layout's
+                            // offsets step by `dil_w` along a kernel row).
+                            Layout::Rows(_) if g.kw == 3 => {
+                                kernel::tile_masked_kw::<S, MR, $nv, 3>(
+                                    s,
+                                    (k, g.dil_w),
+                                    a_ptr,
+                                    b_ptr,
+                                    offs,
+                                    masks.as_ptr(),
+                                )
+                            }
+                            Layout::Rows(_) => kernel::tile_masked::<S, MR, $nv>(
+                                s,
+                                (k, g.kw),
+                                a_ptr,
+                                b_ptr,
+                                offs,
+                                masks.as_ptr(),
+                            ),
+                            _ => kernel::tile_gather::<S, MR, $nv>(s, k, a_ptr, b_ptr, offs),
+                        };
                         match lay {
-                            Layout::Planes(_) => store::<S, MR, $nv>(s, &acc, out, rows, (t, hi)),
+                            Layout::Planes(_) | Layout::Rows(_) => {
+                                store::<S, MR, $nv>(s, &acc, out, rows, (t, hi))
+                            }
                             Layout::Pitched(_) => {
                                 pitched::store::<S, MR, $nv>(s, &acc, out, rows, &list[..count])
                             }

@@ -119,6 +119,103 @@ pub(super) unsafe fn tile_gather<S: Simd, const MR: usize, const NV: usize>(
     acc
 }
 
+/// [`tile_gather`] for the rows layout (`super::direct::rows`): step `kk` reads kernel column
+/// `j = kk % kw`, whose B row holds neighbouring rows' values where the convolution reads
+/// padding; `masks[j*NV + v]` keeps vector `v`'s lanes that are inside the row, the others
+/// load as +0.0, exactly the padding the other routes store.
+///
+/// # Safety
+/// As [`tile_gather`]; `masks` readable for `kw*NV` entries, `kw > 0`.
+#[inline(always)]
+pub(super) unsafe fn tile_masked<S: Simd, const MR: usize, const NV: usize>(
+    s: S,
+    (k, kw): (usize, usize),
+    a: *const f32,
+    b: *const f32,
+    offs: *const u32,
+    masks: *const u32,
+) -> [[S::V; NV]; MR] {
+    let mut acc = [[s.zero(); NV]; MR];
+    let mut a = a;
+    // `masks` index of this step's kernel column: one counter that wraps, rather than a
+    // division per step.
+    let (mut mj, m_end) = (0, kw * NV);
+    for kk in 0..k {
+        // SAFETY: `kk < k` entries of `offs`, and that B row (the caller's bounds).
+        let row = unsafe { b.add(*offs.add(kk) as usize) };
+        let mut bv = [s.zero(); NV];
+        for (v, x) in bv.iter_mut().enumerate() {
+            // SAFETY: within this step's B row and the masks (the caller's bounds).
+            *x = unsafe { s.load_masked(row.add(v * S::LANES), *masks.add(mj + v)) };
+        }
+        for (r, acc_r) in acc.iter_mut().enumerate() {
+            // SAFETY: within this step's A column (the caller's bound on `a`).
+            let av = s.splat(unsafe { *a.add(r) });
+            for (acc_rv, &bx) in acc_r.iter_mut().zip(&bv) {
+                *acc_rv = s.fma(av, bx, *acc_rv);
+            }
+        }
+        // SAFETY: advancing to the next step stays within (or one past) the A panel.
+        a = unsafe { a.add(MR) };
+        mj += NV;
+        if mj == m_end {
+            mj = 0;
+        }
+    }
+    acc
+}
+
+/// [`tile_masked`] for a kernel `KW` columns wide known at compile time (3x3 convolutions):
+/// the `KW` steps of one `(channel, kernel row)` are unrolled, read B rows `dil_w` floats
+/// apart from one offset (`offs[g*KW]`, the group's first column) and keep their `KW*NV`
+/// masks in registers, which leaves the loop only the FMAs' own loads.
+///
+/// # Safety
+/// As [`tile_masked`] with `kw == KW`, `k` a multiple of `KW`, and `offs[g*KW + j] ==
+/// offs[g*KW] + j*dil_w` for every group `g` and column `j`.
+#[inline(always)]
+pub(super) unsafe fn tile_masked_kw<S: Simd, const MR: usize, const NV: usize, const KW: usize>(
+    s: S,
+    (k, dil_w): (usize, usize),
+    a: *const f32,
+    b: *const f32,
+    offs: *const u32,
+    masks: *const u32,
+) -> [[S::V; NV]; MR] {
+    let mut acc = [[s.zero(); NV]; MR];
+    let mut m = [[0u32; NV]; KW];
+    for (j, m_j) in m.iter_mut().enumerate() {
+        for (v, x) in m_j.iter_mut().enumerate() {
+            // SAFETY: `KW*NV` entries (the caller's bound).
+            *x = unsafe { *masks.add(j * NV + v) };
+        }
+    }
+    let mut a = a;
+    for group in 0..k / KW {
+        // SAFETY: entry `group*KW < k` of `offs`, and the group's B rows (the caller's bounds).
+        let row0 = unsafe { b.add(*offs.add(group * KW) as usize) };
+        for (j, m_j) in m.iter().enumerate() {
+            // SAFETY: column `j`'s B row is `j*dil_w` floats on (the caller's contract), and
+            // this step's A column is inside the panel.
+            unsafe {
+                let row = row0.add(j * dil_w);
+                let mut bv = [s.zero(); NV];
+                for (v, x) in bv.iter_mut().enumerate() {
+                    *x = s.load_masked(row.add(v * S::LANES), m_j[v]);
+                }
+                for (r, acc_r) in acc.iter_mut().enumerate() {
+                    let av = s.splat(*a.add(r));
+                    for (acc_rv, &bx) in acc_r.iter_mut().zip(&bv) {
+                        *acc_rv = s.fma(av, bx, *acc_rv);
+                    }
+                }
+                a = a.add(MR);
+            }
+        }
+    }
+    acc
+}
+
 /// Accumulates an `MR x (NV*LANES)` tile over `k` steps: `a` is an A panel (`MR` values per
 /// step), `b` a B panel (`NV*LANES` values per step).
 ///

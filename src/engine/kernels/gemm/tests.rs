@@ -700,9 +700,39 @@ fn direct_layout_choice() {
             pad: (p, p, p, p),
         }
         .geom();
-        let lay = direct::Layout::new(&g, c);
+        let lay = direct::Layout::new(&g, c, false);
         assert_eq!(matches!(lay, direct::Layout::Pitched(_)), pitched, "{g:?}");
         assert_eq!(lay.pays_off(&g, c), direct, "{g:?}");
+    }
+}
+
+#[test]
+fn direct_rows_layout_where_masked_loads_are_fast() {
+    // The rows layout (`gemm/direct/rows.rs`) needs stride 1 and outputs as wide as the
+    // input; elsewhere the choice is the one of `direct_layout_choice`.
+    let cases = [
+        (3, 32, 3, 1, 1, true),   // the ResNet-20 stem
+        (64, 8, 3, 1, 1, true),   // its 8x8 stage
+        (2, 12, 5, 1, 0, false),  // unpadded: outputs narrower than the input
+        (16, 32, 3, 2, 1, false), // strided
+    ];
+    for (c, hw, k, s, p, rows) in cases {
+        let g = Conv {
+            c,
+            hw: (hw, hw),
+            kernel: (k, k),
+            stride: (s, s),
+            dil: (1, 1),
+            pad: (p, p, p, p),
+        }
+        .geom();
+        let lay = direct::Layout::new(&g, c, true);
+        assert_eq!(matches!(lay, direct::Layout::Rows(_)), rows, "{g:?}");
+        if rows {
+            assert!(lay.pays_off(&g, c), "{g:?}");
+        } else {
+            assert_eq!(lay, direct::Layout::new(&g, c, false), "{g:?}");
+        }
     }
 }
 
@@ -718,7 +748,9 @@ fn direct_prepare_matches_the_definition() {
         let layouts = [
             direct::Layout::Pitched(direct::pitched::Pitched::new(&g)),
             direct::Layout::Planes(direct::Planes::new(&g)),
-        ];
+        ]
+        .into_iter()
+        .chain(direct::rows::Rows::new(&g).map(direct::Layout::Rows));
         for lay in layouts {
             let mut buf = vec![f32::NAN; lay.buffer_len(g.in_c)];
             lay.prepare(&input, &g, c0, g.in_c, &mut buf);
@@ -736,7 +768,11 @@ fn direct_prepare_matches_the_definition() {
             );
             for kk in 0..k {
                 for nn in 0..n {
-                    let got = buf[offs[kk] as usize + lay.lin(&g, nn)];
+                    let got = if lay.reads(&g, kk, nn) {
+                        buf[offs[kk] as usize + lay.lin(&g, nn)]
+                    } else {
+                        0.0
+                    };
                     assert_eq!(
                         got.to_bits(),
                         bd[kk * n + nn].to_bits(),

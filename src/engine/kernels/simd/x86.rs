@@ -195,6 +195,12 @@ impl Simd for Avx512 {
     unsafe fn store_partial(self, p: *mut f32, v: __m512, n: usize) {
         cpu!(_mm512_mask_storeu_ps(p, avx512_mask(n), v))
     }
+    const FAST_MASKED_LOAD: bool = true;
+    #[inline(always)]
+    unsafe fn load_masked(self, p: *const f32, mask: u32) -> __m512 {
+        // One zero-masking load: masked-off lanes read as +0.0 and are not accessed.
+        cpu!(_mm512_maskz_loadu_ps(mask as __mmask16, p))
+    }
     #[inline(always)]
     unsafe fn load_even(self, p: *const f32) -> __m512 {
         cpu!({
