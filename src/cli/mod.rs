@@ -150,16 +150,10 @@ pub(crate) fn with_commas(n: u64) -> String {
 pub(crate) fn rpc_error(status: &tonic::Status) -> CliError {
     // A transport failure (a TLS alert, a reset connection) is a status whose message is
     // generic; its reason is in the source chain.
-    let mut message = status.message().to_string();
-    let mut next = std::error::Error::source(status);
-    while let Some(cause) = next {
-        let text = cause.to_string();
-        if !message.contains(&text) {
-            message.push_str(": ");
-            message.push_str(&text);
-        }
-        next = cause.source();
-    }
+    let message = crate::service::error::with_sources(
+        status.message().to_string(),
+        std::error::Error::source(status),
+    );
     CliError::Rpc {
         code: crate::telemetry::code_name(status.code()).to_string(),
         message,

@@ -6,6 +6,7 @@
 //! host (else `--tls-domain`); `--tls-cert` with `--tls-key` present a client certificate to a
 //! server that requires one (mutual TLS).
 
+use crate::service::error::error_chain;
 use std::path::PathBuf;
 
 use tonic::transport::{Certificate, Channel, ClientTlsConfig, Endpoint, Identity};
@@ -82,11 +83,16 @@ pub(crate) async fn connect(addr: &str, tls: &TlsArgs) -> Result<Channel, CliErr
         server: url.clone(),
         reason,
     };
-    let mut endpoint = Endpoint::from_shared(url.clone()).map_err(|e| failed(chain(&e)))?;
+    let mut endpoint = Endpoint::from_shared(url.clone()).map_err(|e| failed(error_chain(&e)))?;
     if let Some(config) = client_tls {
-        endpoint = endpoint.tls_config(config).map_err(|e| failed(chain(&e)))?;
+        endpoint = endpoint
+            .tls_config(config)
+            .map_err(|e| failed(error_chain(&e)))?;
     }
-    endpoint.connect().await.map_err(|e| failed(chain(&e)))
+    endpoint
+        .connect()
+        .await
+        .map_err(|e| failed(error_chain(&e)))
 }
 
 /// The URL to call for `addr` (a scheme added when it has none: `https://` when any TLS flag
@@ -116,20 +122,4 @@ pub(crate) fn url_and_tls(
     } else {
         Ok((url, None))
     }
-}
-
-/// An error and its sources on one line: tonic's transport error says only "transport error";
-/// the reason (refused connection, unknown certificate authority) is further down.
-fn chain(e: &dyn std::error::Error) -> String {
-    let mut s = e.to_string();
-    let mut next = e.source();
-    while let Some(cause) = next {
-        let text = cause.to_string();
-        if !s.contains(&text) {
-            s.push_str(": ");
-            s.push_str(&text);
-        }
-        next = cause.source();
-    }
-    s
 }

@@ -18,6 +18,7 @@
 //! Both loops record into one [`Tally`] behind a std `Mutex`: it is held for a few counter
 //! updates, never across an await, so contention is negligible next to a network round trip.
 
+use crate::service::error::error_chain;
 use std::collections::BTreeMap;
 use std::future::Future;
 use std::sync::atomic::{AtomicU64, AtomicUsize, Ordering};
@@ -170,25 +171,6 @@ fn nanos(d: Duration) -> u64 {
     u64::try_from(d.as_nanos()).unwrap_or(u64::MAX)
 }
 
-/// `std::error::Error` and its sources on one line: tonic's transport errors say little at
-/// the top ("transport error") and the cause underneath.
-fn chain(e: &dyn std::error::Error) -> String {
-    let mut s = e.to_string();
-    let mut last = s.clone();
-    let mut next = e.source();
-    while let Some(cause) = next {
-        // Wrapping layers sometimes repeat their cause's message word for word.
-        let text = cause.to_string();
-        if text != last {
-            s.push_str(": ");
-            s.push_str(&text);
-        }
-        last = text;
-        next = cause.source();
-    }
-    s
-}
-
 async fn connect(
     server: &str,
     tls: Option<&tonic::transport::ClientTlsConfig>,
@@ -200,14 +182,14 @@ async fn connect(
     };
     let endpoint = Endpoint::from_shared(url.clone()).map_err(|e| LoadgenError::Address {
         address: server.to_string(),
-        reason: chain(&e),
+        reason: error_chain(&e),
     })?;
     let endpoint = match tls {
         Some(config) => endpoint
             .tls_config(config.clone())
             .map_err(|e| LoadgenError::Connect {
                 server: url.clone(),
-                reason: chain(&e),
+                reason: error_chain(&e),
             })?,
         None => endpoint,
     };
@@ -217,7 +199,7 @@ async fn connect(
         .await
         .map_err(|e| LoadgenError::Connect {
             server: url,
-            reason: chain(&e),
+            reason: error_chain(&e),
         })?;
     Ok(PredictorClient::new(channel)
         .max_decoding_message_size(MAX_MESSAGE_BYTES)

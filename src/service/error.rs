@@ -85,3 +85,25 @@ impl From<ServiceError> for Status {
         Status::new(e.code(), e.to_string())
     }
 }
+
+/// An error and its sources on one line. tonic's transport errors say only "transport error";
+/// the reason (a refused connection, an unknown certificate authority, rustls' complaint about
+/// a key) sits a level or two down.
+pub fn error_chain(e: &dyn std::error::Error) -> String {
+    with_sources(e.to_string(), e.source())
+}
+
+/// `top`, then each error of the chain from `first` on that says something `top` does not.
+pub fn with_sources(top: String, first: Option<&(dyn std::error::Error + 'static)>) -> String {
+    let mut s = top;
+    let mut next = first;
+    while let Some(cause) = next {
+        let text = cause.to_string();
+        if !s.contains(&text) {
+            s.push_str(": ");
+            s.push_str(&text);
+        }
+        next = cause.source();
+    }
+    s
+}

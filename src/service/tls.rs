@@ -5,6 +5,7 @@
 //! Every file is read and parsed here, before anything binds, so a bad path or PEM stops the
 //! server with an error naming that file instead of failing the first handshake.
 
+use super::error::error_chain;
 use std::net::SocketAddr;
 use std::path::Path;
 
@@ -105,19 +106,4 @@ fn tls_file(path: &Path, problem: String) -> StartError {
         path: path.to_path_buf(),
         problem,
     }
-}
-
-/// An error and its sources on one line (rustls' reason sits a level or two down).
-fn error_chain(e: &dyn std::error::Error) -> String {
-    let mut s = e.to_string();
-    let mut next = e.source();
-    while let Some(cause) = next {
-        let text = cause.to_string();
-        if !s.contains(&text) {
-            s.push_str(": ");
-            s.push_str(&text);
-        }
-        next = cause.source();
-    }
-    s
 }

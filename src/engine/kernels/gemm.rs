@@ -43,23 +43,31 @@ use pack::AlignedBuf;
 mod shape {
     pub(super) const SCALAR_MR: usize = 4;
     pub(super) const SCALAR_NV: usize = 4;
+    #[cfg(target_arch = "x86_64")]
     pub(super) const AVX2_MR: usize = 6;
+    #[cfg(target_arch = "x86_64")]
     pub(super) const AVX2_NV: usize = 2;
+    #[cfg(target_arch = "x86_64")]
     pub(super) const AVX512_MR: usize = 8;
+    #[cfg(target_arch = "x86_64")]
     pub(super) const AVX512_NV: usize = 3;
     #[cfg(target_arch = "aarch64")]
     pub(super) const NEON_MR: usize = 8;
     #[cfg(target_arch = "aarch64")]
     pub(super) const NEON_NV: usize = 3;
     /// Narrow vectors covering one A panel in the row-vectorised kernel.
+    #[cfg(target_arch = "x86_64")]
     pub(super) const AVX2_VM: usize = 1; // 6 rows in one 8-lane ymm
+    #[cfg(target_arch = "x86_64")]
     pub(super) const AVX512_VM: usize = 1; // 8 rows in one ymm (the narrow set of AVX-512)
     #[cfg(target_arch = "aarch64")]
     pub(super) const NEON_VM: usize = 2; // 8 rows in two 4-lane q registers
     /// Ragged column tails up to this width use the row-vectorised kernel. It costs one FMA
     /// instruction per column per panel; a column-vector tile costs MR of them per vector, so
     /// it wins below MR columns, and with AVX-512's narrow ymm it wins below 8.
+    #[cfg(target_arch = "x86_64")]
     pub(super) const AVX2_SMALL: usize = 5;
+    #[cfg(target_arch = "x86_64")]
     pub(super) const AVX512_SMALL: usize = 7;
     #[cfg(target_arch = "aarch64")]
     pub(super) const NEON_SMALL: usize = 3;
