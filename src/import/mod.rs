@@ -1,6 +1,7 @@
 //! Importing models that training frameworks export: ONNX file → verified bundle.
 //!
-//! [`import_onnx`] reads the file (and external data beside it), converts it
+//! [`import_onnx`] reads the file (and external data beside it; [`import_onnx_bytes`] takes the
+//! bytes from memory and returns the bundle instead of writing it), converts it
 //! ([`onnx::convert`]), builds a bundle, runs the converted model on check inputs — the
 //! caller's reference arrays, or generated ones — then, when a drift reference is given, runs
 //! it through the same engine into a baseline ([`crate::drift::reference`]) stored in the
@@ -172,16 +173,7 @@ pub fn import_onnx(
         source,
     };
     // Opened first: a mistyped reference path fails before the conversion work.
-    let reference = match &options.reference {
-        Some(path) => {
-            let set = ReferenceSet::open(path)?;
-            Some(match options.reference_limit {
-                Some(n) => set.limit(n)?,
-                None => set,
-            })
-        }
-        None => None,
-    };
+    let reference = open_reference(options)?;
     let bytes_len = std::fs::metadata(model).map_err(io)?.len();
     if bytes_len > MAX_ONNX_BYTES {
         return Err(ImportError::FileTooLarge {
@@ -196,8 +188,6 @@ pub fn import_onnx(
         bytes_len as f64 / 1e6
     ));
     let bytes = std::fs::read(model).map_err(io)?;
-    let proto = onnx::proto::decode_model(&bytes)?;
-    drop(bytes);
     let dir = model.parent().map(|p| {
         if p.as_os_str().is_empty() {
             Path::new(".")
@@ -205,13 +195,88 @@ pub fn import_onnx(
             p
         }
     });
-    let external = onnx::tensor::ExternalData::new(dir);
+    let source = Source {
+        default_name: default_name(model),
+        file_name: model
+            .file_name()
+            .map(|f| f.to_string_lossy().into_owned())
+            .unwrap_or_default(),
+        dir,
+    };
+    let (bundle, mut report) = build_bundle(bytes, &source, options, reference, progress)?;
+    progress(&format!("writing {}", output.display()));
+    crate::bundle::write_atomically(output, &bundle)?;
+    report.output = output.to_path_buf();
+    Ok(report)
+}
+
+/// Imports an ONNX model held in memory and returns the bundle's bytes with the report (whose
+/// `output` is empty). The name defaults to `model`; a model whose tensors live in external
+/// data files is refused, as there is no folder to read them from.
+///
+/// # Errors
+/// As [`import_onnx`], except the file errors: [`ImportError::FileTooLarge`] when `bytes` is
+/// over [`MAX_ONNX_BYTES`]; [`ImportError::ExternalData`] for any external tensor.
+pub fn import_onnx_bytes(
+    bytes: Vec<u8>,
+    options: &ImportOptions,
+    progress: &mut dyn FnMut(&str),
+) -> Result<(Vec<u8>, ImportReport), ImportError> {
+    let reference = open_reference(options)?;
+    if bytes.len() as u64 > MAX_ONNX_BYTES {
+        return Err(ImportError::FileTooLarge {
+            path: PathBuf::new(),
+            bytes: bytes.len() as u64,
+            limit: MAX_ONNX_BYTES,
+        });
+    }
+    let source = Source {
+        default_name: "model".into(),
+        file_name: String::new(),
+        dir: None,
+    };
+    build_bundle(bytes, &source, options, reference, progress)
+}
+
+/// Where the ONNX bytes came from: the defaults and the record that depend on it.
+struct Source<'a> {
+    default_name: String,
+    /// For the bundle's `source` record; empty for bytes from memory.
+    file_name: String,
+    /// The folder external data is read from; `None` refuses external data.
+    dir: Option<&'a Path>,
+}
+
+fn open_reference(options: &ImportOptions) -> Result<Option<ReferenceSet>, ImportError> {
+    match &options.reference {
+        Some(path) => {
+            let set = ReferenceSet::open(path)?;
+            Ok(Some(match options.reference_limit {
+                Some(n) => set.limit(n)?,
+                None => set,
+            }))
+        }
+        None => Ok(None),
+    }
+}
+
+/// Converts, verifies and builds the bundle: everything of an import but the file I/O.
+fn build_bundle(
+    bytes: Vec<u8>,
+    source: &Source<'_>,
+    options: &ImportOptions,
+    reference: Option<ReferenceSet>,
+    progress: &mut dyn FnMut(&str),
+) -> Result<(Vec<u8>, ImportReport), ImportError> {
+    let proto = onnx::proto::decode_model(&bytes)?;
+    drop(bytes);
+    let external = onnx::tensor::ExternalData::new(source.dir);
     progress("converting");
     let converted = onnx::convert::convert(&proto, &external)?;
 
     let name = match &options.name {
         Some(n) => n.clone(),
-        None => default_name(model),
+        None => source.default_name.clone(),
     };
     let version = options.version.clone().unwrap_or_else(|| "1".into());
     let input_shape = converted.graph.input.shape.clone();
@@ -240,10 +305,7 @@ pub fn import_onnx(
     .description(options.description.clone())
     .source(format!(
         "{} (ONNX opset {}{})",
-        model
-            .file_name()
-            .map(|f| f.to_string_lossy())
-            .unwrap_or_default(),
+        source.file_name,
         converted.opset,
         if converted.producer.is_empty() {
             String::new()
@@ -349,17 +411,15 @@ pub fn import_onnx(
         }
         None => None,
     };
-    progress(&format!("writing {}", output.display()));
     let bytes = writer.to_bytes()?;
     let file_bytes = bytes.len();
     let final_bundle = Bundle::from_bytes(bytes.clone())?;
-    crate::bundle::write_atomically(output, &bytes)?;
 
     let summary = final_bundle.summary();
     let mut notes = converted.notes.clone();
     notes.extend(engine.plan().folded().iter().cloned());
-    Ok(ImportReport {
-        output: output.to_path_buf(),
+    let report = ImportReport {
+        output: PathBuf::new(),
         name,
         version,
         opset: converted.opset,
@@ -378,7 +438,8 @@ pub fn import_onnx(
         bound,
         file_bytes,
         drift,
-    })
+    };
+    Ok((bytes, report))
 }
 
 /// The model name from a file name: its stem with characters outside the name rule replaced.

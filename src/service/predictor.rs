@@ -113,15 +113,6 @@ impl Shared {
             attempts += 1;
             let model = self.registry.resolve(&req.model, &req.version)?;
             *labels = (model.name.clone(), model.version.clone());
-            if count == 0 {
-                return Err(ServiceError::NoSamples);
-            }
-            if count > self.limits.max_samples_per_request {
-                return Err(ServiceError::TooManySamples {
-                    count,
-                    limit: self.limits.max_samples_per_request,
-                });
-            }
             let ready = match prepared.take() {
                 // The new version takes its input the same way: no need to prepare again.
                 Some((before, mut ready)) if before.manifest.input == model.manifest.input => {
@@ -137,14 +128,16 @@ impl Shared {
                 }
                 _ => {
                     let (prep_model, samples) = (Arc::clone(&model), Arc::clone(&samples));
-                    let limits = self.limits.image;
+                    let limits = self.limits.clone();
                     // Decoding and resizing images is CPU work: keep it off the async I/O
                     // threads.
-                    tokio::task::spawn_blocking(move || prepare_all(&prep_model, &samples, &limits))
-                        .await
-                        .map_err(|e| {
-                            ServiceError::Internal(format!("preparation task failed: {e}"))
-                        })??
+                    tokio::task::spawn_blocking(move || {
+                        check_request(&prep_model, &samples, &limits)
+                    })
+                    .await
+                    .map_err(|e| {
+                        ServiceError::Internal(format!("preparation task failed: {e}"))
+                    })??
                 }
             };
             match self.scheduler.submit(
@@ -357,9 +350,42 @@ fn drift_reply(model: &ModelVersion, alpha: f64) -> Result<api::DriftReply, Serv
 
 /// A request's samples as model input (back to back), with each sample's input-side drift
 /// statistics when the version is monitored.
-struct Prepared {
+pub struct Prepared {
     inputs: Arc<Vec<f32>>,
     stats: Option<Vec<SampleStats>>,
+}
+
+impl Prepared {
+    /// The model input of every sample, back to back.
+    pub fn inputs(&self) -> &[f32] {
+        &self.inputs
+    }
+}
+
+/// Every check a request's samples pass before they are queued, and their preparation: at
+/// least one sample, at most `limits.max_samples_per_request`, then each sample turned into
+/// `model`'s input. The `Predict` and `PredictStream` calls run exactly this (on a blocking
+/// thread, as images are CPU work); it needs no server, so tests and fuzzing drive it directly.
+///
+/// # Errors
+/// [`ServiceError::NoSamples`], [`ServiceError::TooManySamples`],
+/// [`ServiceError::EmptySample`] and [`ServiceError::Sample`] naming the first bad sample.
+pub fn check_request(
+    model: &ModelVersion,
+    samples: &[api::Sample],
+    limits: &RequestLimits,
+) -> Result<Prepared, ServiceError> {
+    let count = samples.len();
+    if count == 0 {
+        return Err(ServiceError::NoSamples);
+    }
+    if count > limits.max_samples_per_request {
+        return Err(ServiceError::TooManySamples {
+            count,
+            limit: limits.max_samples_per_request,
+        });
+    }
+    prepare_all(model, samples, &limits.image)
 }
 
 /// Turns every sample into model input, and computes the input half of its drift statistics

@@ -70,6 +70,15 @@ pub const FOLDABLE_OPS: &[&str] = &[
 /// and the bound keeps per-axis bookkeeping small whatever a model's constants say.
 pub const MAX_RANK: usize = 64;
 
+/// Most elements one folded output may have: 2^24 (128 MiB as `i64`). Unlike a stored tensor,
+/// whose size the file itself pays for, a folded output (`ConstantOfShape`, `Expand`, `Tile`,
+/// `Range`...) can be asked for by a few bytes; under the stored-tensor limit of 2^30 a 44 KB
+/// model made `ConstantOfShape` allocate gigabytes (found by the `onnx_import` fuzz target).
+/// Shape arithmetic needs a handful of elements, and folded weights are at most as large as
+/// the largest weight of a small classifier (ResNet-50's largest, 512·512·3·3 ≈ 2.4 M, from
+/// memory), far below the limit.
+pub const MAX_FOLDED_ELEMENTS: usize = 1 << 24;
+
 /// Whether [`fold_node`] knows this op type (of the default ONNX domain).
 pub fn can_fold(op_type: &str) -> bool {
     FOLDABLE_OPS.contains(&op_type)
@@ -85,7 +94,7 @@ pub fn can_fold(op_type: &str) -> bool {
 /// [`ImportError::Unsupported`] naming the node and operator for a wrong number of inputs or
 /// outputs, a missing required input or attribute, mismatched element types, invalid
 /// shapes, axes or indices, integer division by zero, or an output over
-/// [`MAX_ELEMENTS`](super::tensor::MAX_ELEMENTS); [`ImportError::UnsupportedOp`] for an
+/// [`MAX_FOLDED_ELEMENTS`]; [`ImportError::UnsupportedOp`] for an
 /// operator outside [`can_fold`]; [`ImportError::Tensor`] for a bad `Constant` tensor.
 pub fn fold_node(
     node: &NodeProto,
@@ -217,7 +226,14 @@ impl<'a> Ctx<'a> {
                 shape.len()
             )));
         }
-        element_count(shape).map_err(|p| self.err(format!("output {p}")))
+        let count = element_count(shape).map_err(|p| self.err(format!("output {p}")))?;
+        if count > MAX_FOLDED_ELEMENTS {
+            return Err(self.err(format!(
+                "output shape {shape:?} has {count} elements, more than the limit of \
+                 {MAX_FOLDED_ELEMENTS} for a value computed at import time"
+            )));
+        }
+        Ok(count)
     }
 
     fn attr_int(&self, name: &str) -> Result<Option<i64>, ImportError> {
