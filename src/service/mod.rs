@@ -227,25 +227,32 @@ impl RunningServer {
     }
 }
 
-/// The transport refuses a message over `max_message_bytes` with OUT_OF_RANGE; a size limit is
-/// a resource limit, so clients see RESOURCE_EXHAUSTED instead, with the transport's message
-/// (which names the size and the limit). The status travels in the headers of a trailers-only
-/// response, or in the trailers, so both are checked.
-fn oversize_is_resource_exhausted(
+/// Two statuses of the transport say the wrong thing, and are rewritten (the gRPC status code
+/// specification, doc/statuscodes.md, is the reference for both):
+/// - a message over `max_message_bytes` is refused with OUT_OF_RANGE; a size limit is a
+///   resource limit, so clients see RESOURCE_EXHAUSTED, with the transport's message (which
+///   names the size and the limit) and the setting's name;
+/// - a call whose `grpc-timeout` expires before the handler answers is ended with CANCELLED
+///   ("Timeout expired"); the specification's code for it is DEADLINE_EXCEEDED, which is also
+///   what the scheduler answers for a request whose deadline passes in the queue.
+///
+/// The status travels in the headers of a trailers-only response, or in the trailers, so
+/// both are checked.
+fn fix_transport_statuses(
     response: http::Response<tonic::body::Body>,
 ) -> http::Response<tonic::body::Body> {
     // Trailers-only responses carry the status in the headers; others in the trailers.
     let mut response = response;
-    fix_oversize_status(response.headers_mut());
-    response.map(|body| tonic::body::Body::new(OversizeStatus { inner: body }))
+    fix_status(response.headers_mut());
+    response.map(|body| tonic::body::Body::new(FixedStatus { inner: body }))
 }
 
-/// A response body whose trailers get [`fix_oversize_status`].
-struct OversizeStatus {
+/// A response body whose trailers get [`fix_status`].
+struct FixedStatus {
     inner: tonic::body::Body,
 }
 
-impl http_body::Body for OversizeStatus {
+impl http_body::Body for FixedStatus {
     type Data = <tonic::body::Body as http_body::Body>::Data;
     type Error = <tonic::body::Body as http_body::Body>::Error;
 
@@ -256,7 +263,7 @@ impl http_body::Body for OversizeStatus {
         match std::pin::Pin::new(&mut self.inner).poll_frame(cx) {
             std::task::Poll::Ready(Some(Ok(frame))) => match frame.into_trailers() {
                 Ok(mut trailers) => {
-                    fix_oversize_status(&mut trailers);
+                    fix_status(&mut trailers);
                     std::task::Poll::Ready(Some(Ok(http_body::Frame::trailers(trailers))))
                 }
                 Err(frame) => std::task::Poll::Ready(Some(Ok(frame))),
@@ -274,16 +281,25 @@ impl http_body::Body for OversizeStatus {
     }
 }
 
-fn fix_oversize_status(headers: &mut http::HeaderMap) {
-    let out_of_range = headers
-        .get("grpc-status")
-        .is_some_and(|v| v.as_bytes() == b"11");
+fn fix_status(headers: &mut http::HeaderMap) {
+    let status = headers.get("grpc-status").map(|v| v.as_bytes().to_vec());
     // grpc-message is percent-encoded on the wire (gRPC over HTTP/2 specification).
-    let oversize = headers.get("grpc-message").is_some_and(|v| {
-        let text = String::from_utf8_lossy(v.as_bytes()).replace("%20", " ");
-        text.contains("message length too large")
-    });
-    if out_of_range && oversize {
+    let message = headers
+        .get("grpc-message")
+        .map(|v| String::from_utf8_lossy(v.as_bytes()).replace("%20", " "))
+        .unwrap_or_default();
+    // tonic's own text for an expired grpc-timeout (tonic::TimeoutExpired).
+    if status.as_deref() == Some(b"1") && message == "Timeout expired" {
+        headers.insert("grpc-status", http::HeaderValue::from_static("4"));
+        headers.insert(
+            "grpc-message",
+            http::HeaderValue::from_static(
+                "the%20call's%20deadline%20passed%20before%20it%20was%20answered",
+            ),
+        );
+        return;
+    }
+    if status.as_deref() == Some(b"11") && message.contains("message length too large") {
         headers.insert("grpc-status", http::HeaderValue::from_static("8"));
         // Every limit's message names its setting; the transport's does not know ours.
         if let Some(v) = headers.get("grpc-message") {
@@ -422,9 +438,7 @@ pub async fn start(config: &ServeConfig) -> Result<RunningServer, StartError> {
     let (tx, rx) = oneshot::channel::<()>();
     let task = tokio::spawn(
         transport
-            .layer(tower::util::MapResponseLayer::new(
-                oversize_is_resource_exhausted,
-            ))
+            .layer(tower::util::MapResponseLayer::new(fix_transport_statuses))
             .add_service(health)
             .add_service(reflection)
             .add_service(predictor)
@@ -506,4 +520,46 @@ fn serve_control(
         shutdown: Some(tx),
         task,
     })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::fix_status;
+
+    fn headers(status: &'static str, message: &'static str) -> http::HeaderMap {
+        let mut h = http::HeaderMap::new();
+        h.insert("grpc-status", http::HeaderValue::from_static(status));
+        h.insert("grpc-message", http::HeaderValue::from_static(message));
+        h
+    }
+
+    #[test]
+    fn an_expired_timeout_becomes_deadline_exceeded() {
+        let mut h = headers("1", "Timeout%20expired");
+        fix_status(&mut h);
+        assert_eq!(h["grpc-status"], "4");
+        // A client's own cancellation is left alone.
+        let mut h = headers("1", "operation%20was%20canceled");
+        fix_status(&mut h);
+        assert_eq!(h["grpc-status"], "1");
+    }
+
+    #[test]
+    fn an_oversized_message_becomes_resource_exhausted_naming_the_setting() {
+        let mut h = headers(
+            "11",
+            "message%20length%20too%20large:%20found%20999%20bytes",
+        );
+        fix_status(&mut h);
+        assert_eq!(h["grpc-status"], "8");
+        assert!(
+            h["grpc-message"]
+                .to_str()
+                .unwrap()
+                .ends_with("(setting%20max_message_bytes)")
+        );
+        let mut h = headers("11", "index%20out%20of%20range");
+        fix_status(&mut h);
+        assert_eq!(h["grpc-status"], "11");
+    }
 }
