@@ -9,9 +9,11 @@
 //! library itself produces), cited beside each case; facts without a source there are marked
 //! "common practice".
 
-use std::io::{BufRead, BufReader};
+#[path = "support/serve_process.rs"]
+mod serve_process;
+
+use serve_process::ServeProcess;
 use std::net::SocketAddr;
-use std::process::{Child, Command, Stdio};
 use std::sync::Arc;
 use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
 use std::time::Duration;
@@ -37,74 +39,6 @@ const QUEUE_LIMIT: usize = 4096;
 /// request bodies in all (oversize messages, images, tensors); keeping even half of it would
 /// exceed this margin.
 const RSS_MARGIN_KIB: u64 = 32 * 1024;
-
-/// The child process, killed when the test ends however it ends.
-struct Server {
-    child: Child,
-    addr: SocketAddr,
-}
-
-impl Drop for Server {
-    fn drop(&mut self) {
-        let _ = self.child.kill();
-        let _ = self.child.wait();
-    }
-}
-
-impl Server {
-    /// Starts `convoy serve --listen 127.0.0.1:0` and reads the bound address from its
-    /// "serving ... on ADDR" line; stderr is drained on a thread from then on so the child
-    /// never blocks on a full pipe.
-    fn start(config: &std::path::Path) -> Server {
-        let mut child = Command::new(env!("CARGO_BIN_EXE_convoy"))
-            .args(["serve", "--listen", "127.0.0.1:0", "--config"])
-            .arg(config)
-            .env("RUST_LOG", "warn")
-            .stdin(Stdio::null())
-            .stdout(Stdio::null())
-            .stderr(Stdio::piped())
-            .spawn()
-            .expect("start convoy serve");
-        let stderr = child.stderr.take().unwrap();
-        let (tx, rx) = std::sync::mpsc::channel();
-        std::thread::spawn(move || {
-            let mut tx = Some(tx);
-            for line in BufReader::new(stderr).lines().map_while(Result::ok) {
-                if let Some(rest) = line.split_once("serving ").map(|(_, r)| r)
-                    && let Some((_, addr)) = rest.split_once(" on ")
-                    && let Some(tx) = tx.take()
-                {
-                    let addr = addr.split([' ', ';']).next().unwrap_or("").to_string();
-                    let _ = tx.send(addr);
-                } else if tx.is_none() {
-                    // Log lines after start-up: keep them visible in a failing test's output.
-                    eprintln!("server: {line}");
-                }
-            }
-        });
-        let addr = rx
-            .recv_timeout(Duration::from_secs(60))
-            .expect("the server reports its address")
-            .parse()
-            .expect("a socket address");
-        Server { child, addr }
-    }
-
-    fn alive(&mut self) -> bool {
-        matches!(self.child.try_wait(), Ok(None))
-    }
-
-    /// VmRSS of the child in KiB, from /proc/<pid>/status (proc(5)).
-    fn rss_kib(&self) -> u64 {
-        let status = std::fs::read_to_string(format!("/proc/{}/status", self.child.id()))
-            .expect("read /proc/<pid>/status");
-        status
-            .lines()
-            .find_map(|l| l.strip_prefix("VmRSS:"))
-            .and_then(|v| v.trim().trim_end_matches("kB").trim().parse().ok())
-            .expect("a VmRSS line")
-    }
-}
 
 /// Request and reply bodies as raw bytes, so a client can send what no protobuf encoder
 /// would produce.
@@ -285,7 +219,15 @@ async fn hostile_clients_get_proper_statuses_and_do_no_harm() {
         ),
     )
     .unwrap();
-    let mut server = Server::start(&config);
+    let mut server = ServeProcess::start(
+        [
+            std::ffi::OsStr::new("--listen"),
+            "127.0.0.1:0".as_ref(),
+            "--config".as_ref(),
+            config.as_os_str(),
+        ],
+        "warn",
+    );
     let url = format!("http://{}", server.addr);
     let channel = Channel::from_shared(url).unwrap().connect().await.unwrap();
     let mut client = PredictorClient::new(channel.clone());

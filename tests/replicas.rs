@@ -10,11 +10,15 @@
 //! Drift counters are plain counters, so summing them over replicas (what `sum()` does in a
 //! Prometheus query) must give exactly what one replica counts for the same traffic.
 
+#[path = "support/serve_process.rs"]
+mod serve_process;
+
+use serve_process::ServeProcess;
 use std::collections::BTreeMap;
-use std::io::{BufRead, BufReader, Cursor, Read, Write};
+use std::ffi::OsStr;
+use std::io::{Cursor, Read, Write};
 use std::net::{SocketAddr, TcpStream};
 use std::path::Path;
-use std::process::{Child, Command, Stdio};
 use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
 use std::sync::{Arc, Mutex, RwLock};
 use std::time::Duration;
@@ -24,12 +28,11 @@ use tonic::transport::Channel;
 use tonic_health::pb::health_check_response::ServingStatus;
 use tonic_health::pb::{HealthCheckRequest, health_client::HealthClient};
 
-/// One `convoy serve` process with the built-in demo model.
+/// One `convoy serve` process with the built-in demo model, and its metrics address.
 struct Replica {
-    child: Child,
+    process: ServeProcess,
     addr: SocketAddr,
     metrics: SocketAddr,
-    log: std::thread::JoinHandle<Vec<String>>,
 }
 
 fn free_port() -> u16 {
@@ -53,44 +56,18 @@ fn spawn_replica(dir: &Path, name: &str) -> Replica {
         ),
     )
     .unwrap();
-    let mut child = Command::new(env!("CARGO_BIN_EXE_convoy"))
-        .args(["serve", "--config"])
-        .arg(&config)
-        .env("RUST_LOG", "info")
-        .stdout(Stdio::null())
-        .stderr(Stdio::piped())
-        .spawn()
-        .unwrap();
-    let mut lines = BufReader::new(child.stderr.take().unwrap()).lines();
-    let addr = loop {
-        let line = lines
-            .next()
-            .expect("the replica says where it listens")
-            .unwrap();
-        if let Some(rest) = line.strip_prefix("convoy: serving ") {
-            let at = rest.split(" on ").nth(1).unwrap();
-            break at.split([' ', ';']).next().unwrap().parse().unwrap();
-        }
-    };
-    let log = std::thread::spawn(move || lines.map_while(Result::ok).collect());
+    let process = ServeProcess::start([OsStr::new("--config"), config.as_os_str()], "info");
     Replica {
-        child,
-        addr,
+        addr: process.addr,
+        process,
         metrics,
-        log,
     }
 }
 
 impl Replica {
-    /// SIGTERM, then the process's own exit; returns its log.
-    fn stop(mut self) -> Vec<String> {
-        let st = Command::new("kill")
-            .args(["-TERM", &self.child.id().to_string()])
-            .status()
-            .unwrap();
-        assert!(st.success());
-        let status = self.child.wait().unwrap();
-        let log = self.log.join().unwrap();
+    /// SIGTERM, then the process's own exit, which must be clean; returns its log.
+    fn stop(self) -> Vec<String> {
+        let (status, log) = self.process.terminate();
         assert!(status.success(), "exit {status:?}:\n{}", log.join("\n"));
         log
     }

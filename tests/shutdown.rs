@@ -9,16 +9,17 @@
 
 #[path = "../benches/nets/mod.rs"]
 mod nets;
+#[path = "support/serve_process.rs"]
+mod serve_process;
 
-use std::io::{BufRead, BufReader};
 use std::path::Path;
-use std::process::{Command, Stdio};
 use std::sync::Arc;
 use std::sync::atomic::{AtomicUsize, Ordering};
 use std::time::Duration;
 
 use convoy::service::api::{self, predictor_client::PredictorClient, sample::Data};
 use convoy::service::{DrainSettings, RunningServer, ServeConfig, start};
+use serve_process::ServeProcess;
 use tonic::Code;
 use tonic::transport::Channel;
 use tonic_health::pb::health_check_response::ServingStatus;
@@ -74,6 +75,15 @@ async fn channel(server: &RunningServer) -> Channel {
         .connect()
         .await
         .unwrap()
+}
+
+/// After a drain the port is closed: a new connection is refused.
+async fn assert_nothing_listens(addr: std::net::SocketAddr) {
+    let again = Channel::from_shared(format!("http://{addr}"))
+        .unwrap()
+        .connect()
+        .await;
+    assert!(again.is_err(), "the port still accepts connections");
 }
 
 /// What the callers saw.
@@ -182,11 +192,7 @@ async fn a_drain_answers_every_accepted_request_and_refuses_new_ones() {
         accepted_at_start
     );
     // Nothing listens any more.
-    let again = Channel::from_shared(format!("http://{addr}"))
-        .unwrap()
-        .connect()
-        .await;
-    assert!(again.is_err(), "the port still accepts connections");
+    assert_nothing_listens(addr).await;
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
@@ -220,11 +226,7 @@ async fn during_the_notice_health_is_not_serving_but_requests_are_answered() {
     assert_eq!(report.unanswered, 0);
     assert!(report.took >= Duration::from_millis(1500));
     // The server is gone: a new connection is refused.
-    let again = Channel::from_shared(format!("http://{addr}"))
-        .unwrap()
-        .connect()
-        .await;
-    assert!(again.is_err(), "the port still accepts connections");
+    assert_nothing_listens(addr).await;
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
@@ -319,33 +321,14 @@ async fn streams_that_never_end_do_not_hold_the_drain_past_its_grace() {
 /// with status 0 and logs the drain.
 #[test]
 fn convoy_serve_drains_on_sigterm() {
-    let mut child = Command::new(env!("CARGO_BIN_EXE_convoy"))
-        .args(["serve", "--listen", "127.0.0.1:0"])
-        .env("RUST_LOG", "info")
-        .stdout(Stdio::null())
-        .stderr(Stdio::piped())
-        .spawn()
-        .unwrap();
-    let stderr = child.stderr.take().unwrap();
-    let mut lines = BufReader::new(stderr).lines();
-    // "convoy: serving 1 model version(s) on 127.0.0.1:PORT"
-    let addr = loop {
-        let line = lines
-            .next()
-            .expect("the server says where it listens")
-            .unwrap();
-        if let Some(rest) = line.strip_prefix("convoy: serving ") {
-            let addr = rest.split(" on ").nth(1).unwrap();
-            break addr.split([' ', ';']).next().unwrap().to_string();
-        }
-    };
-    let rest = std::thread::spawn(move || lines.map_while(Result::ok).collect::<Vec<_>>());
+    let server = ServeProcess::start(["--listen", "127.0.0.1:0"], "info");
+    let addr = server.addr;
     let rt = tokio::runtime::Builder::new_multi_thread()
         .worker_threads(2)
         .enable_all()
         .build()
         .unwrap();
-    let pid = child.id();
+    let server_ref = &server;
     let (ok, refused) = rt.block_on(async move {
         let ch = Channel::from_shared(format!("http://{addr}"))
             .unwrap()
@@ -387,11 +370,7 @@ fn convoy_serve_drains_on_sigterm() {
             }));
         }
         tokio::time::sleep(Duration::from_millis(300)).await;
-        let st = Command::new("kill")
-            .args(["-TERM", &pid.to_string()])
-            .status()
-            .unwrap();
-        assert!(st.success());
+        server_ref.signal_terminate();
         let (mut ok, mut refused) = (0, 0);
         for c in calls {
             let (o, r) = c.await.unwrap();
@@ -400,8 +379,8 @@ fn convoy_serve_drains_on_sigterm() {
         }
         (ok, refused)
     });
-    let status = child.wait().unwrap();
-    let log = rest.join().unwrap().join("\n");
+    let (status, log) = server.wait();
+    let log = log.join("\n");
     assert!(status.success(), "exit status {status:?}; log:\n{log}");
     assert!(ok > 0 && refused == 8, "ok {ok}, refused {refused}");
     assert!(log.contains("draining"), "{log}");

@@ -13,6 +13,7 @@
 //! store straight into C.
 
 use super::super::ConvGeom;
+use super::LINE;
 
 /// The rows layout (see the module documentation).
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -29,9 +30,6 @@ pub(in super::super) struct Rows {
     /// last output, shifted by the rightmost tap.
     tail: usize,
 }
-
-/// Floats per cache line.
-const LINE: usize = 16;
 
 /// Kernel columns the per-tile mask table holds (4 vectors each, see [`MASKS`]).
 const MAX_KW: usize = 16;
