@@ -45,6 +45,9 @@ pub struct Bundle {
     index: HashMap<String, usize>,
     shapes: Shapes,
     file_sha256: String,
+    /// SHA-256 of every byte before the signature block (the whole file when unsigned): what
+    /// a signature covers, taken from the same pass as `file_sha256`.
+    signed_sha256: [u8; 32],
     /// Where the data section ends: the end of the file, or where the signature block starts.
     data_end: usize,
     signature: Option<SignatureBlock>,
@@ -201,7 +204,7 @@ impl Bundle {
 
         let index = check_tensor_index(&manifest, data_len)?;
         let data_start = data_start as usize;
-        let (file_sha256, checked) =
+        let (FileDigests { file, signed_part }, checked) =
             hash_file_and_data(&bytes, data_start..data_end, |data_sha256| {
                 let actual = hex(&data_sha256);
                 if actual != manifest.data_sha256.to_ascii_lowercase() {
@@ -223,7 +226,8 @@ impl Bundle {
                 values: HashMap::new(),
                 node_outputs: Vec::new(),
             },
-            file_sha256: hex(&file_sha256),
+            file_sha256: hex(&file),
+            signed_sha256: signed_part,
             data_end,
             signature,
         };
@@ -254,6 +258,11 @@ impl Bundle {
     /// Every byte a signature covers: the whole file up to the signature block.
     pub fn signed_part(&self) -> &[u8] {
         &self.bytes[..self.data_end]
+    }
+
+    /// SHA-256 of [`signed_part`](Self::signed_part), computed while the bundle was verified.
+    pub fn signed_part_sha256(&self) -> &[u8; 32] {
+        &self.signed_sha256
     }
 
     /// The file's bytes.
@@ -425,8 +434,16 @@ impl Bundle {
 /// second core would save under a millisecond, not worth taking it from a busy server.
 const PARALLEL_HASH_MIN: usize = 1 << 20;
 
-/// Computes the SHA-256 of the whole file and, with the SHA-256 of the data section (the
-/// bytes in `data`), runs `check_data`; returns the file digest and `check_data`'s result.
+/// The whole file's SHA-256, and that of the part before the signature block (the same bytes
+/// when the bundle is unsigned).
+struct FileDigests {
+    file: [u8; 32],
+    signed_part: [u8; 32],
+}
+
+/// Computes the file's digests ([`FileDigests`]; the part a signature covers ends where
+/// `data` ends) and, with the SHA-256 of the data section (the bytes in `data`), runs
+/// `check_data`; returns the digests and `check_data`'s result.
 ///
 /// The two digests cannot share work: the data section's digest starts from SHA-256's initial
 /// state, the file's from the state after the header and manifest, so every data block is
@@ -438,8 +455,19 @@ fn hash_file_and_data<T: Send>(
     bytes: &[u8],
     data: std::ops::Range<usize>,
     check_data: impl FnOnce([u8; 32]) -> T,
-) -> ([u8; 32], T) {
-    let file_digest = || -> [u8; 32] { Sha256::digest(bytes).into() };
+) -> (FileDigests, T) {
+    let file_digest = || -> FileDigests {
+        // One pass: the state after the signed part is finished once as it is, and once more
+        // after the signature block.
+        let mut hasher = Sha256::new();
+        hasher.update(&bytes[..data.end]);
+        let signed_part: [u8; 32] = hasher.clone().finalize().into();
+        hasher.update(&bytes[data.end..]);
+        FileDigests {
+            file: hasher.finalize().into(),
+            signed_part,
+        }
+    };
     let data_digest = || -> [u8; 32] { Sha256::digest(&bytes[data.clone()]).into() };
     let parallel = bytes.len() >= PARALLEL_HASH_MIN
         && std::thread::available_parallelism().is_ok_and(|n| n.get() > 1);

@@ -122,9 +122,15 @@ pub fn fingerprint(public_key: &[u8; 32]) -> String {
 /// The message an Ed25519 signature of a bundle covers: [`SIGNING_DOMAIN`] and the SHA-256 of
 /// every byte before the signature block.
 pub fn signed_message(signed_part: &[u8]) -> Vec<u8> {
+    signed_message_of_digest(&Sha256::digest(signed_part).into())
+}
+
+/// [`signed_message`] from the SHA-256 of the signed part, when it is already known
+/// ([`Bundle::signed_part_sha256`]).
+fn signed_message_of_digest(digest: &[u8; 32]) -> Vec<u8> {
     let mut m = Vec::with_capacity(SIGNING_DOMAIN.len() + 32);
     m.extend_from_slice(SIGNING_DOMAIN);
-    m.extend_from_slice(&Sha256::digest(signed_part));
+    m.extend_from_slice(digest);
     m
 }
 
@@ -416,7 +422,10 @@ pub fn check_signature(bundle: &Bundle, trust: Trust<'_>) -> Result<String, Sign
             })?
         }
     };
-    if key.verify(&signed_message(bundle.signed_part()), &block.signature) {
+    if key.verify(
+        &signed_message_of_digest(bundle.signed_part_sha256()),
+        &block.signature,
+    ) {
         Ok(fingerprint)
     } else {
         Err(SignatureProblem::BadSignature { fingerprint })
