@@ -77,15 +77,13 @@ impl Shared {
             telemetry::UNKNOWN.to_string(),
         );
         // Counted until it is answered, so that a draining server waits for it.
-        let admitted = self.admission.admit();
-        let result = match admitted {
-            Some(_) => {
+        let result = match self.admission.admit() {
+            Some(_admitted) => {
                 self.predict_inner(req, received, deadline, &mut labels)
                     .await
             }
             None => Err(ServiceError::ShuttingDown),
         };
-        drop(admitted);
         let code = match &result {
             Ok(_) => tonic::Code::Ok,
             Err(e) => e.code(),

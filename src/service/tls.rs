@@ -5,7 +5,6 @@
 //! Every file is read and parsed here, before anything binds, so a bad path or PEM stops the
 //! server with an error naming that file instead of failing the first handshake.
 
-use super::error::error_chain;
 use std::net::SocketAddr;
 use std::path::Path;
 
@@ -13,6 +12,7 @@ use rustls_pki_types::pem::PemObject;
 use rustls_pki_types::{CertificateDer, PrivateKeyDer};
 use tonic::transport::{Certificate, Identity, Server, ServerTlsConfig};
 
+use super::error::error_chain;
 use super::{ServeConfig, StartError};
 use crate::bundle::signature::PublicKey;
 
