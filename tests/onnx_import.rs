@@ -358,9 +358,21 @@ fn bad_files_are_refused_cleanly() {
             |e| matches!(e, ImportError::Tensor { .. }),
         ),
         (
-            "fixed batch",
-            model(vec![node("Relu", "r", &["x"], &["y"])], vec![], &[8, 3], 17),
-            |e| matches!(e, ImportError::Input { .. }),
+            // A fixed batch of 8 mixed into another axis: [8, 6] → [16, 3].
+            "fixed batch mixed into an axis",
+            model(
+                vec![node("Reshape", "r", &["x", "to"], &["y"])],
+                vec![pb::TensorProto {
+                    name: "to".into(),
+                    dims: vec![2],
+                    data_type: 7,
+                    int64_data: vec![16, 3],
+                    ..Default::default()
+                }],
+                &[8, 6],
+                17,
+            ),
+            |e| matches!(e, ImportError::Unsupported { .. }),
         ),
     ];
     for (what, bytes, expected) in cases {

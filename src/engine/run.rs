@@ -8,8 +8,8 @@
 //! so a workspace holds the activations of one slice, not of the whole batch. Batch invariance
 //! makes the slicing invisible in the results.
 
-use super::kernels::gemm::{BSource, Epilogue, GemmScratch, gemm};
-use super::kernels::{depthwise, pool};
+use super::kernels::gemm::{BSource, Epilogue, GemmScratch, PackedWeights, gemm};
+use super::kernels::{depthwise, elementwise, layout, norm, pool};
 use super::plan::{ConvKind, ConvStep, Plan, StepKind};
 
 /// Buffers for one slice of a batch at a time (see [`Plan::slice_samples`]); grow-only, so a
@@ -19,6 +19,8 @@ pub struct Workspace {
     buffers: Vec<Vec<f32>>,
     gemm: GemmScratch,
     dense: Vec<f32>,
+    /// Sums of layer norms and reductions.
+    sums: Vec<f64>,
 }
 
 impl Workspace {
@@ -115,6 +117,8 @@ impl Plan {
         &buffers[self.value_buffer[v]][..self.value_len[v] * batch]
     }
 
+    /// One step over the slice: convolutions and dense layers (which use the GEMM scratch),
+    /// ops with two operands or several inputs, and the per-sample ops of one input.
     fn run_step(
         &self,
         step: &super::plan::Step,
@@ -129,12 +133,13 @@ impl Plan {
             buffers,
             gemm: scratch,
             dense: tmp,
+            sums,
         } = ws;
         let buffers = buffers.as_slice();
+        let input = self.value(buffers, step.inputs[0], batch);
         match &step.kind {
             StepKind::Conv(conv) => {
                 let residual = conv.residual.map(|r| self.value(buffers, r, batch));
-                let input = self.value(buffers, step.inputs[0], batch);
                 for s in 0..batch {
                     run_conv(
                         conv,
@@ -145,93 +150,25 @@ impl Plan {
                     );
                 }
             }
-            StepKind::Dense { weights, bias, act } => {
-                let input = self.value(buffers, step.inputs[0], batch);
-                // C is [out, batch]; the value layout is [batch, out], so transpose after.
-                if tmp.len() < out_len * batch {
-                    tmp.resize(out_len * batch, 0.0);
-                }
+            StepKind::Dense {
+                weights,
+                bias,
+                act,
+                features,
+            } => {
                 let epi = Epilogue {
                     bias: bias.as_deref(),
                     residual: None,
                     act: *act,
                 };
-                gemm(
-                    weights,
-                    &BSource::MatrixT {
-                        data: input,
-                        ld: in_len,
-                    },
-                    batch,
-                    0..batch,
-                    &mut tmp[..out_len * batch],
-                    batch,
-                    &epi,
-                    scratch,
-                );
-                for s in 0..batch {
-                    for o in 0..out_len {
-                        out[s * out_len + o] = tmp[o * batch + s];
-                    }
-                }
+                dense(weights, &epi, *features, input, out, tmp, scratch);
             }
-            StepKind::Affine {
-                scale,
-                shift,
-                inner,
+            StepKind::Binary {
+                kind,
+                how,
+                swapped,
+                constant,
             } => {
-                let input = self.value(buffers, step.inputs[0], batch);
-                for s in 0..batch {
-                    pool::channel_affine(
-                        scale,
-                        shift,
-                        *inner,
-                        &input[s * in_len..][..in_len],
-                        &mut out[s * out_len..][..out_len],
-                    );
-                }
-            }
-            StepKind::Act(a) => {
-                out.copy_from_slice(self.value(buffers, step.inputs[0], batch));
-                a.apply_slice(out);
-            }
-            StepKind::MaxPool(g) => {
-                let input = self.value(buffers, step.inputs[0], batch);
-                for s in 0..batch {
-                    pool::max_pool(
-                        g,
-                        &input[s * in_len..][..in_len],
-                        &mut out[s * out_len..][..out_len],
-                    );
-                }
-            }
-            StepKind::AvgPool {
-                geom,
-                count_include_pad,
-            } => {
-                let input = self.value(buffers, step.inputs[0], batch);
-                for s in 0..batch {
-                    pool::avg_pool(
-                        geom,
-                        *count_include_pad,
-                        &input[s * in_len..][..in_len],
-                        &mut out[s * out_len..][..out_len],
-                    );
-                }
-            }
-            StepKind::GlobalAvgPool { c, plane } => {
-                let input = self.value(buffers, step.inputs[0], batch);
-                for s in 0..batch {
-                    pool::global_avg_pool(
-                        *c,
-                        *plane,
-                        &input[s * in_len..][..in_len],
-                        &mut out[s * out_len..][..out_len],
-                    );
-                }
-            }
-            StepKind::Binary { mul, how, constant } => {
-                let a = self.value(buffers, step.inputs[0], batch);
                 let (b, b_len) = match constant {
                     Some(c) => (c.as_slice(), 0),
                     None => {
@@ -239,65 +176,127 @@ impl Plan {
                         (self.value(buffers, v, batch), self.value_len[v])
                     }
                 };
-                let b_len_used = match how {
-                    pool::Broadcast::Full => in_len,
-                    pool::Broadcast::PerChannel { inner } => in_len / inner,
-                    pool::Broadcast::Scalar => 1,
-                };
+                let b_used = if constant.is_some() { b.len() } else { b_len };
                 for s in 0..batch {
                     // A constant is shared by all samples; a value operand has one per sample.
-                    let b_s = &b[s * b_len..][..b_len_used];
-                    pool::binary(
-                        *how,
-                        *mul,
-                        &a[s * in_len..][..in_len],
-                        b_s,
+                    elementwise::binary(
+                        how,
+                        *kind,
+                        *swapped,
+                        &input[s * in_len..][..in_len],
+                        &b[s * b_len..][..b_used],
                         &mut out[s * out_len..][..out_len],
                     );
                 }
             }
-            StepKind::Concat { sizes } => {
+            StepKind::Concat { outer, blocks } => {
+                let mut parts: Vec<(&[f32], usize)> = Vec::with_capacity(blocks.len());
                 for s in 0..batch {
-                    let mut at = s * out_len;
-                    for (&v, &len) in step.inputs.iter().zip(sizes) {
-                        let src = &self.value(buffers, v, batch)[s * len..][..len];
-                        out[at..at + len].copy_from_slice(src);
-                        at += len;
+                    parts.clear();
+                    for (&v, &block) in step.inputs.iter().zip(blocks) {
+                        let len = self.value_len[v];
+                        parts.push((&self.value(buffers, v, batch)[s * len..][..len], block));
                     }
+                    layout::concat(*outer, &parts, &mut out[s * out_len..][..out_len]);
                 }
             }
-            StepKind::Softmax { c, inner } => {
-                let input = self.value(buffers, step.inputs[0], batch);
-                for s in 0..batch {
-                    pool::softmax(
-                        *c,
-                        *inner,
-                        &input[s * in_len..][..in_len],
-                        &mut out[s * out_len..][..out_len],
-                    );
-                }
+            StepKind::Act(a) => {
+                out.copy_from_slice(input);
+                a.apply_slice(out);
             }
-            StepKind::Pad {
-                c,
-                h,
-                w,
-                padding,
-                value,
-            } => {
-                let input = self.value(buffers, step.inputs[0], batch);
+            kind => {
                 for s in 0..batch {
-                    pool::pad(
-                        *c,
-                        *h,
-                        *w,
-                        *padding,
-                        *value,
+                    per_sample(
+                        kind,
                         &input[s * in_len..][..in_len],
                         &mut out[s * out_len..][..out_len],
+                        sums,
                     );
                 }
             }
         }
+    }
+}
+
+/// A dense layer over the last axis of `input` (every sample's positions back to back):
+/// one GEMM whose columns are all positions of the slice.
+fn dense(
+    weights: &PackedWeights,
+    epi: &Epilogue<'_>,
+    features: usize,
+    input: &[f32],
+    out: &mut [f32],
+    tmp: &mut Vec<f32>,
+    scratch: &mut GemmScratch,
+) {
+    let columns = input.len() / features;
+    let outputs = out.len() / columns;
+    // C is [outputs, columns]; the value layout is [columns, outputs], so transpose after.
+    if tmp.len() < out.len() {
+        tmp.resize(out.len(), 0.0);
+    }
+    gemm(
+        weights,
+        &BSource::MatrixT {
+            data: input,
+            ld: features,
+        },
+        columns,
+        0..columns,
+        &mut tmp[..out.len()],
+        columns,
+        epi,
+        scratch,
+    );
+    for c in 0..columns {
+        for o in 0..outputs {
+            out[c * outputs + o] = tmp[o * columns + c];
+        }
+    }
+}
+
+/// The ops that map one sample's input to its output alone.
+fn per_sample(kind: &StepKind, input: &[f32], out: &mut [f32], sums: &mut Vec<f64>) {
+    match kind {
+        StepKind::Affine {
+            scale,
+            shift,
+            inner,
+        } => pool::channel_affine(scale, shift, *inner, input, out),
+        StepKind::MaxPool(g) => pool::max_pool(g, input, out),
+        StepKind::AvgPool {
+            geom,
+            count_include_pad,
+        } => pool::avg_pool(geom, *count_include_pad, input, out),
+        StepKind::GlobalAvgPool { c, plane } => pool::global_avg_pool(*c, *plane, input, out),
+        StepKind::Softmax { c, inner } => pool::softmax(*c, *inner, input, out),
+        StepKind::Pad {
+            c,
+            h,
+            w,
+            padding,
+            channels,
+            value,
+        } => pool::pad([*c, *h, *w], *padding, *channels, *value, input, out),
+        StepKind::Copy(c) => c.run(input, out),
+        StepKind::Gather {
+            outer,
+            len,
+            inner,
+            indices,
+        } => layout::gather(*outer, *len, *inner, indices, input, out),
+        StepKind::LayerNorm {
+            dims,
+            scale,
+            bias,
+            epsilon,
+        } => norm::layer_norm(*dims, scale, bias.as_deref(), *epsilon, input, out, sums),
+        StepKind::Reduce(r) => r.run(input, out, sums),
+        StepKind::Conv(_)
+        | StepKind::Dense { .. }
+        | StepKind::Binary { .. }
+        | StepKind::Concat { .. }
+        | StepKind::Act(_) => unreachable!("run by Plan::run_step"),
     }
 }
 

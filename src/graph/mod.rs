@@ -89,6 +89,43 @@ fn yes() -> bool {
     true
 }
 
+/// The element-wise operation of a two-operand op.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum BinaryKind {
+    Add,
+    Sub,
+    Mul,
+    Div,
+    Max,
+    Min,
+}
+
+impl BinaryKind {
+    /// Whether `a ∘ b = b ∘ a` (so the planner may swap operands).
+    pub fn commutes(self) -> bool {
+        !matches!(self, BinaryKind::Sub | BinaryKind::Div)
+    }
+
+    /// The op for a value and an optional constant operand.
+    pub fn op(self, constant: Option<String>, constant_first: bool) -> Op {
+        match self {
+            BinaryKind::Add => Op::Add { constant },
+            BinaryKind::Mul => Op::Mul { constant },
+            BinaryKind::Sub => Op::Sub {
+                constant,
+                constant_first,
+            },
+            BinaryKind::Div => Op::Div {
+                constant,
+                constant_first,
+            },
+            BinaryKind::Max => Op::Max { constant },
+            BinaryKind::Min => Op::Min { constant },
+        }
+    }
+}
+
 /// The operators a bundle may use, with their parameters. Tensor fields name entries of the
 /// bundle's tensor index.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
@@ -183,14 +220,120 @@ pub enum Op {
         #[serde(default)]
         constant: Option<String>,
     },
-    Concat,
+    /// Joins its inputs (one or more) along a per-sample axis (0 = channels).
+    Concat {
+        #[serde(default)]
+        axis: usize,
+    },
     Softmax,
+    /// Constant padding of `[C, H, W]`: `padding` on the spatial axes, `channels` (before,
+    /// after) on the channel axis.
     Pad {
         padding: Padding4,
         #[serde(default)]
         value: f32,
+        #[serde(default)]
+        channels: [usize; 2],
     },
     Identity,
+    /// `a - b`; with a constant, `value - constant`, or `constant - value` when
+    /// `constant_first`.
+    Sub {
+        #[serde(default)]
+        constant: Option<String>,
+        #[serde(default)]
+        constant_first: bool,
+    },
+    /// `a / b`, operands as for [`Op::Sub`].
+    Div {
+        #[serde(default)]
+        constant: Option<String>,
+        #[serde(default)]
+        constant_first: bool,
+    },
+    /// Element-wise maximum (NaN in either operand gives NaN, as ONNX's `Max`).
+    Max {
+        #[serde(default)]
+        constant: Option<String>,
+    },
+    /// Element-wise minimum (NaN propagates).
+    Min {
+        #[serde(default)]
+        constant: Option<String>,
+    },
+    /// `x^exponent` for a constant exponent.
+    Pow {
+        exponent: f32,
+    },
+    Sqrt,
+    Reciprocal,
+    Abs,
+    Neg,
+    Exp,
+    Log,
+    Erf,
+    /// Reorders the per-sample axes: output axis `i` is input axis `perm[i]`.
+    Transpose {
+        perm: Vec<usize>,
+    },
+    /// Takes a strided range along some per-sample axes.
+    Slice {
+        ranges: Vec<AxisRange>,
+    },
+    /// Picks `indices` along one per-sample axis (constant indices, already non-negative).
+    Gather {
+        axis: usize,
+        indices: Vec<usize>,
+    },
+    /// Broadcasts the input to `shape` (same rank; each input dimension equal or 1).
+    Expand {
+        shape: Vec<usize>,
+    },
+    /// Repeats the input `repeats[i]` times along each per-sample axis.
+    Tile {
+        repeats: Vec<usize>,
+    },
+    /// Normalises over `count` axes starting at `axis` (mean 0, variance 1, then
+    /// `· scale + bias`); `scale` and `bias` have those axes' shape. ONNX's
+    /// LayerNormalization is `count = rank - axis`; a channels-first layer norm is `axis 0,
+    /// count 1` of `[C, H, W]`.
+    LayerNorm {
+        scale: String,
+        #[serde(default)]
+        bias: Option<String>,
+        axis: usize,
+        count: usize,
+        #[serde(default = "eps_default")]
+        epsilon: f32,
+    },
+    /// Mean, maximum, sum or Euclidean norm over some per-sample axes.
+    Reduce {
+        kind: ReduceKind,
+        axes: Vec<usize>,
+        #[serde(default)]
+        keep_dims: bool,
+    },
+}
+
+/// One axis of a [`Op::Slice`]: `count` elements from `start`, `step` apart (negative steps
+/// walk backwards).
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+pub struct AxisRange {
+    pub axis: usize,
+    pub start: usize,
+    pub step: i64,
+    pub count: usize,
+}
+
+/// What a [`Op::Reduce`] computes.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum ReduceKind {
+    Mean,
+    Max,
+    Sum,
+    /// `sqrt(Σ x²)`.
+    L2,
 }
 
 fn one() -> usize {
@@ -223,6 +366,25 @@ impl Op {
         "softmax",
         "pad",
         "identity",
+        "sub",
+        "div",
+        "max",
+        "min",
+        "pow",
+        "sqrt",
+        "reciprocal",
+        "abs",
+        "neg",
+        "exp",
+        "log",
+        "erf",
+        "transpose",
+        "slice",
+        "gather",
+        "expand",
+        "tile",
+        "layer_norm",
+        "reduce",
     ];
 
     /// The op's name as written in a manifest.
@@ -247,14 +409,52 @@ impl Op {
             Op::Reshape { .. } => "reshape",
             Op::Add { .. } => "add",
             Op::Mul { .. } => "mul",
-            Op::Concat => "concat",
+            Op::Concat { .. } => "concat",
             Op::Softmax => "softmax",
             Op::Pad { .. } => "pad",
             Op::Identity => "identity",
+            Op::Sub { .. } => "sub",
+            Op::Div { .. } => "div",
+            Op::Max { .. } => "max",
+            Op::Min { .. } => "min",
+            Op::Pow { .. } => "pow",
+            Op::Sqrt => "sqrt",
+            Op::Reciprocal => "reciprocal",
+            Op::Abs => "abs",
+            Op::Neg => "neg",
+            Op::Exp => "exp",
+            Op::Log => "log",
+            Op::Erf => "erf",
+            Op::Transpose { .. } => "transpose",
+            Op::Slice { .. } => "slice",
+            Op::Gather { .. } => "gather",
+            Op::Expand { .. } => "expand",
+            Op::Tile { .. } => "tile",
+            Op::LayerNorm { .. } => "layer_norm",
+            Op::Reduce { .. } => "reduce",
         }
     }
 
     /// The tensor names this op reads, with the role of each (for error messages).
+    /// The binary element-wise kind, with its constant operand, for ops that have one.
+    pub fn binary(&self) -> Option<(BinaryKind, Option<&str>, bool)> {
+        Some(match self {
+            Op::Add { constant } => (BinaryKind::Add, constant.as_deref(), false),
+            Op::Mul { constant } => (BinaryKind::Mul, constant.as_deref(), false),
+            Op::Sub {
+                constant,
+                constant_first,
+            } => (BinaryKind::Sub, constant.as_deref(), *constant_first),
+            Op::Div {
+                constant,
+                constant_first,
+            } => (BinaryKind::Div, constant.as_deref(), *constant_first),
+            Op::Max { constant } => (BinaryKind::Max, constant.as_deref(), false),
+            Op::Min { constant } => (BinaryKind::Min, constant.as_deref(), false),
+            _ => return None,
+        })
+    }
+
     pub fn tensors(&self) -> Vec<(&'static str, &str)> {
         let mut out = Vec::new();
         match self {
@@ -276,8 +476,23 @@ impl Op {
                 out.push(("mean", mean.as_str()));
                 out.push(("variance", variance.as_str()));
             }
-            Op::Add { constant: Some(c) } | Op::Mul { constant: Some(c) } => {
+            Op::Add { constant: Some(c) }
+            | Op::Mul { constant: Some(c) }
+            | Op::Sub {
+                constant: Some(c), ..
+            }
+            | Op::Div {
+                constant: Some(c), ..
+            }
+            | Op::Max { constant: Some(c) }
+            | Op::Min { constant: Some(c) } => {
                 out.push(("constant", c.as_str()));
+            }
+            Op::LayerNorm { scale, bias, .. } => {
+                out.push(("scale", scale.as_str()));
+                if let Some(b) = bias {
+                    out.push(("bias", b.as_str()));
+                }
             }
             _ => {}
         }

@@ -12,12 +12,20 @@ use std::collections::{HashMap, HashSet};
 
 use thiserror::Error;
 
+mod layers;
+mod layout;
+
 use super::arith::{Window, WindowError};
-use super::{Graph, Op, WeightLayout};
+use super::{Graph, Op};
 
 /// Largest number of elements one per-sample value may have (2^28 f32 = 1 GiB). Far above any
 /// small classifier; it exists so that a hostile manifest cannot make a plan allocate terabytes.
 pub const MAX_VALUE_ELEMENTS: usize = 1 << 28;
+
+/// Most per-sample axes a value may have (six with the batch): enough for the channel
+/// shuffles and channels-last blocks of standard classifiers, and small enough that index
+/// bookkeeping in the kernels stays on the stack.
+pub const MAX_RANK: usize = 5;
 
 /// Why a graph does not check.
 #[derive(Clone, Debug, PartialEq, Error)]
@@ -135,7 +143,7 @@ pub fn infer(
     if input.is_empty() || input.len() > 3 {
         return Err(GraphError::BadInputShape {
             shape: input.clone(),
-            reason: "rank must be 1 ([F]) or 3 ([C, H, W]) or 2",
+            reason: "rank must be 1 ([F]), 2 or 3 ([C, H, W])",
         });
     }
     if input.contains(&0) {
@@ -182,6 +190,14 @@ pub fn infer(
         };
         let out = ctx.infer_node(&node.op, &ins)?;
         checked_size(&node.name, op, &out)?;
+        if out.is_empty() || out.len() > MAX_RANK {
+            return Err(GraphError::BadParameter {
+                node: node.name.clone(),
+                op,
+                param: "output rank",
+                reason: format!("{out:?} must have 1 to {MAX_RANK} axes after the batch"),
+            });
+        }
         if values.contains_key(&node.output) {
             return Err(GraphError::DuplicateValue {
                 node: node.name.clone(),
@@ -225,6 +241,11 @@ impl Ctx<'_> {
                 found: ins.len(),
             })
         }
+    }
+
+    fn one_input<'i>(&self, ins: &'i [Vec<usize>]) -> Result<&'i [usize], GraphError> {
+        self.arity(ins, "1", ins.len() == 1)?;
+        Ok(&ins[0])
     }
 
     fn input_shape(&self, found: &[usize], expected: impl Into<String>) -> GraphError {
@@ -290,363 +311,122 @@ impl Ctx<'_> {
         })
     }
 
+    /// One function per op group: layers with weights and windows (`layers.rs`), ops that
+    /// move or combine data (`layout.rs`), and the element-wise ones here.
     fn infer_node(&self, op: &Op, ins: &[Vec<usize>]) -> Result<Vec<usize>, GraphError> {
         match op {
-            Op::Conv2d {
+            Op::Conv2d { .. } => self.conv(op, ins),
+            Op::BatchNorm { epsilon, .. } => self.batch_norm(*epsilon, ins),
+            Op::Dense { .. } => self.dense(op, ins),
+            Op::MaxPool { .. } | Op::AvgPool { .. } | Op::GlobalAvgPool => self.pooling(op, ins),
+            Op::Pad {
+                padding,
+                value,
+                channels,
+            } => self.pad(*padding, *channels, *value, ins),
+            Op::Flatten => Ok(vec![self.one_input(ins)?.iter().product()]),
+            Op::Reshape { shape } => self.reshape(self.one_input(ins)?, shape),
+            Op::Concat { axis } => self.concat(*axis, ins),
+            Op::Transpose { perm } => self.transpose(self.one_input(ins)?, perm),
+            Op::Slice { ranges } => self.slice(self.one_input(ins)?, ranges),
+            Op::Gather { axis, indices } => self.gather(self.one_input(ins)?, *axis, indices),
+            Op::Expand { shape } => self.expand(self.one_input(ins)?, shape),
+            Op::Tile { repeats } => self.tile(self.one_input(ins)?, repeats),
+            Op::Reduce {
+                axes, keep_dims, ..
+            } => self.reduce(self.one_input(ins)?, axes, *keep_dims),
+            Op::LayerNorm {
                 bias,
-                stride,
-                dilation,
-                padding,
-                groups,
+                axis,
+                count,
+                epsilon,
                 ..
-            } => {
-                self.arity(ins, "1", ins.len() == 1)?;
-                let [c, h, w] = self.chw(&ins[0])?;
-                let (wname, wshape) = self.tensor("weight");
-                let &[oc, icg, kh, kw] = wshape.as_slice() else {
-                    return Err(GraphError::TensorShape {
-                        node: self.node.to_string(),
-                        op: self.op,
-                        role: "weight",
-                        tensor: wname.clone(),
-                        found: wshape.clone(),
-                        expected: "[out_c, in_c / groups, kh, kw]".into(),
-                    });
-                };
-                let g = *groups;
-                if g == 0 || c % g != 0 || oc % g != 0 || oc == 0 {
-                    return Err(self.bad_param(
-                        "groups",
-                        format!(
-                            "{g} groups must divide both the {c} input and {oc} output channels"
-                        ),
-                    ));
-                }
-                if icg != c / g {
-                    return Err(GraphError::TensorShape {
-                        node: self.node.to_string(),
-                        op: self.op,
-                        role: "weight",
-                        tensor: wname.clone(),
-                        found: wshape.clone(),
-                        expected: format!(
-                            "[{oc}, {}, kh, kw] for {c} input channels in {g} groups",
-                            c / g
-                        ),
-                    });
-                }
-                if bias.is_some() {
-                    self.expect_tensor("bias", &[oc])?;
-                }
-                let oh = self.window(
-                    "height",
-                    Window {
-                        input: h,
-                        kernel: kh,
-                        stride: stride[0],
-                        dilation: dilation[0],
-                        pad_begin: padding[0],
-                        pad_end: padding[2],
-                    },
-                    None,
-                )?;
-                let ow = self.window(
-                    "width",
-                    Window {
-                        input: w,
-                        kernel: kw,
-                        stride: stride[1],
-                        dilation: dilation[1],
-                        pad_begin: padding[1],
-                        pad_end: padding[3],
-                    },
-                    None,
-                )?;
-                Ok(vec![oc, oh, ow])
-            }
-            Op::BatchNorm { epsilon, .. } => {
-                self.arity(ins, "1", ins.len() == 1)?;
-                let c = ins[0][0];
-                for role in ["gamma", "beta", "mean", "variance"] {
-                    self.expect_tensor(role, &[c])?;
-                }
-                if !(epsilon.is_finite() && *epsilon >= 0.0) {
-                    return Err(
-                        self.bad_param("epsilon", format!("{epsilon} is not a finite value ≥ 0"))
-                    );
-                }
-                Ok(ins[0].clone())
-            }
-            Op::Dense {
-                bias,
-                weight_layout,
-                ..
-            } => {
-                self.arity(ins, "1", ins.len() == 1)?;
-                let &[f] = ins[0].as_slice() else {
-                    return Err(self.input_shape(&ins[0], "a flat [F] value (add a flatten node)"));
-                };
-                let (wname, wshape) = self.tensor("weight");
-                let out = match (weight_layout, wshape.as_slice()) {
-                    (WeightLayout::OutIn, &[o, i]) if i == f => o,
-                    (WeightLayout::InOut, &[i, o]) if i == f => o,
-                    _ => {
-                        return Err(GraphError::TensorShape {
-                            node: self.node.to_string(),
-                            op: self.op,
-                            role: "weight",
-                            tensor: wname.clone(),
-                            found: wshape.clone(),
-                            expected: match weight_layout {
-                                WeightLayout::OutIn => format!("[out, {f}]"),
-                                WeightLayout::InOut => format!("[{f}, out]"),
-                            },
-                        });
-                    }
-                };
-                if out == 0 {
-                    return Err(self.bad_param("weight", "a dense layer needs at least one output"));
-                }
-                if bias.is_some() {
-                    self.expect_tensor("bias", &[out])?;
-                }
-                Ok(vec![out])
-            }
-            Op::Relu
-            | Op::Sigmoid
-            | Op::Tanh
-            | Op::HardSwish
-            | Op::Silu
-            | Op::Gelu { .. }
-            | Op::Identity => {
-                self.arity(ins, "1", ins.len() == 1)?;
-                Ok(ins[0].clone())
-            }
-            Op::Clip { min, max } => {
-                self.arity(ins, "1", ins.len() == 1)?;
-                if min.is_nan() || max.is_nan() || min > max {
-                    return Err(
-                        self.bad_param("min/max", format!("need min ≤ max, got {min}..{max}"))
-                    );
-                }
-                Ok(ins[0].clone())
-            }
-            Op::LeakyRelu { slope } => {
-                self.arity(ins, "1", ins.len() == 1)?;
-                if !slope.is_finite() {
-                    return Err(self.bad_param("slope", format!("{slope} is not finite")));
-                }
-                Ok(ins[0].clone())
-            }
-            Op::HardSigmoid { alpha, beta } => {
-                self.arity(ins, "1", ins.len() == 1)?;
-                if !alpha.is_finite() || !beta.is_finite() {
-                    return Err(self.bad_param("alpha/beta", "must be finite"));
-                }
-                Ok(ins[0].clone())
-            }
-            Op::MaxPool {
-                kernel,
-                stride,
-                padding,
-                dilation,
-                ceil_mode,
-            } => {
-                self.arity(ins, "1", ins.len() == 1)?;
-                self.pool(
-                    &ins[0],
-                    *kernel,
-                    stride.unwrap_or(*kernel),
-                    *padding,
-                    *dilation,
-                    *ceil_mode,
-                )
-            }
-            Op::AvgPool {
-                kernel,
-                stride,
-                padding,
-                ceil_mode,
-                ..
-            } => {
-                self.arity(ins, "1", ins.len() == 1)?;
-                self.pool(
-                    &ins[0],
-                    *kernel,
-                    stride.unwrap_or(*kernel),
-                    *padding,
-                    [1, 1],
-                    *ceil_mode,
-                )
-            }
-            Op::GlobalAvgPool => {
-                self.arity(ins, "1", ins.len() == 1)?;
-                let [c, _, _] = self.chw(&ins[0])?;
-                Ok(vec![c, 1, 1])
-            }
-            Op::Flatten => {
-                self.arity(ins, "1", ins.len() == 1)?;
-                Ok(vec![ins[0].iter().product()])
-            }
-            Op::Reshape { shape } => {
-                self.arity(ins, "1", ins.len() == 1)?;
-                self.reshape(&ins[0], shape)
-            }
-            Op::Add { constant } | Op::Mul { constant } => match constant {
-                Some(_) => {
-                    self.arity(ins, "1 (with a constant)", ins.len() == 1)?;
-                    let (_, cshape) = self.tensor("constant");
-                    let out = self.broadcast(&ins[0], cshape)?;
-                    // The value must keep its shape: a constant may broadcast into the value,
-                    // not the other way round.
-                    if out != ins[0] {
-                        return Err(self.input_shape(
-                            &ins[0],
-                            format!("a value at least as large as the constant {cshape:?}"),
-                        ));
-                    }
-                    Ok(out)
-                }
-                None => {
-                    self.arity(ins, "2", ins.len() == 2)?;
-                    self.broadcast(&ins[0], &ins[1])
-                }
-            },
-            Op::Concat => {
-                self.arity(ins, "at least 2", ins.len() >= 2)?;
-                let first = &ins[0];
-                let mut channels = 0usize;
-                for x in ins {
-                    if x.len() != first.len() || x[1..] != first[1..] {
-                        return Err(self.input_shape(
-                            x,
-                            format!("the same shape as {first:?} apart from the channel axis"),
-                        ));
-                    }
-                    channels += x[0];
-                }
-                let mut out = first.clone();
-                out[0] = channels;
-                Ok(out)
-            }
-            Op::Softmax => {
-                self.arity(ins, "1", ins.len() == 1)?;
-                Ok(ins[0].clone())
-            }
-            Op::Pad { padding, value } => {
-                self.arity(ins, "1", ins.len() == 1)?;
-                let [c, h, w] = self.chw(&ins[0])?;
-                if !value.is_finite() {
-                    return Err(self.bad_param("value", format!("{value} is not finite")));
-                }
-                let grow = |a: usize, b: usize, d: usize| (d as u128) + (a as u128) + (b as u128);
-                let oh = grow(padding[0], padding[2], h);
-                let ow = grow(padding[1], padding[3], w);
-                if oh * ow * c as u128 > MAX_VALUE_ELEMENTS as u128 {
-                    return Err(GraphError::TooLarge {
-                        node: self.node.to_string(),
-                        op: self.op,
-                        elements: oh * ow * c as u128,
-                        limit: MAX_VALUE_ELEMENTS,
-                    });
-                }
-                Ok(vec![c, oh as usize, ow as usize])
-            }
+            } => self.layer_norm(
+                self.one_input(ins)?,
+                bias.is_some(),
+                *axis,
+                *count,
+                *epsilon,
+            ),
+            Op::Softmax => Ok(self.one_input(ins)?.to_vec()),
+            op if op.binary().is_some() => self.binary(op, ins),
+            op => self.unary(op, ins),
         }
     }
 
-    fn pool(
-        &self,
-        x: &[usize],
-        kernel: [usize; 2],
-        stride: [usize; 2],
-        padding: [usize; 4],
-        dilation: [usize; 2],
-        ceil_mode: bool,
-    ) -> Result<Vec<usize>, GraphError> {
-        let [c, h, w] = self.chw(x)?;
-        let oh = self.window(
-            "height",
-            Window {
-                input: h,
-                kernel: kernel[0],
-                stride: stride[0],
-                dilation: dilation[0],
-                pad_begin: padding[0],
-                pad_end: padding[2],
-            },
-            Some(ceil_mode),
-        )?;
-        let ow = self.window(
-            "width",
-            Window {
-                input: w,
-                kernel: kernel[1],
-                stride: stride[1],
-                dilation: dilation[1],
-                pad_begin: padding[1],
-                pad_end: padding[3],
-            },
-            Some(ceil_mode),
-        )?;
-        Ok(vec![c, oh, ow])
+    /// Element-wise ops of one operand: the output has the input's shape.
+    fn unary(&self, op: &Op, ins: &[Vec<usize>]) -> Result<Vec<usize>, GraphError> {
+        let x = self.one_input(ins)?;
+        match *op {
+            Op::Clip { min, max } if min.is_nan() || max.is_nan() || min > max => {
+                Err(self.bad_param("min/max", format!("need min ≤ max, got {min}..{max}")))
+            }
+            Op::LeakyRelu { slope } if !slope.is_finite() => {
+                Err(self.bad_param("slope", format!("{slope} is not finite")))
+            }
+            Op::HardSigmoid { alpha, beta } if !alpha.is_finite() || !beta.is_finite() => {
+                Err(self.bad_param("alpha/beta", "must be finite"))
+            }
+            Op::Pow { exponent } if !exponent.is_finite() => {
+                Err(self.bad_param("exponent", format!("{exponent} is not finite")))
+            }
+            _ => Ok(x.to_vec()),
+        }
     }
 
-    fn reshape(&self, x: &[usize], target: &[i64]) -> Result<Vec<usize>, GraphError> {
-        let total: usize = x.iter().product();
-        if target.is_empty() || target.len() > 3 {
-            return Err(self.bad_param("shape", format!("{target:?} must have 1 to 3 entries")));
-        }
-        let mut known = 1usize;
-        let mut free = None;
-        for (i, &d) in target.iter().enumerate() {
-            match d {
-                -1 if free.is_none() => free = Some(i),
-                d if d >= 1 => {
-                    known = known
-                        .checked_mul(d as usize)
-                        .ok_or_else(|| self.bad_param("shape", format!("{target:?} overflows")))?;
-                }
-                _ => {
-                    return Err(self.bad_param(
-                        "shape",
-                        format!("{target:?}: entries must be ≥ 1, with at most one -1"),
-                    ));
-                }
-            }
-        }
-        let mut out: Vec<usize> = target.iter().map(|&d| d.max(0) as usize).collect();
-        if let Some(i) = free {
-            if !total.is_multiple_of(known) {
-                return Err(
-                    self.input_shape(x, format!("a size divisible by {known} for {target:?}"))
-                );
-            }
-            out[i] = total / known;
-        } else if known != total {
-            return Err(self.input_shape(x, format!("{known} elements for {target:?}")));
-        }
-        Ok(out)
-    }
-
-    /// Equal shapes; a per-channel `[C,1,1]` or `[C]` operand against `[C,H,W]`; or a `[1]`
-    /// scalar. The result has the larger operand's shape.
-    fn broadcast(&self, a: &[usize], b: &[usize]) -> Result<Vec<usize>, GraphError> {
-        if a == b {
-            return Ok(a.to_vec());
-        }
-        let fits = |small: &[usize], big: &[usize]| -> bool {
-            small == [1] || (big.len() == 3 && (small == [big[0], 1, 1] || small == [big[0]]))
+    /// Two operands (or one and a constant) broadcast by the ONNX (numpy) rule on per-sample
+    /// shapes of equal rank; also the older forms `[C]` against `[C, H, W]` and `[1]`.
+    fn binary(&self, op: &Op, ins: &[Vec<usize>]) -> Result<Vec<usize>, GraphError> {
+        let Some((_, constant, _)) = op.binary() else {
+            unreachable!("dispatched on binary()")
         };
-        if fits(b, a) {
-            Ok(a.to_vec())
-        } else if fits(a, b) {
-            Ok(b.to_vec())
-        } else {
-            Err(self.input_shape(
-                b,
-                format!("a shape that broadcasts against {a:?}: equal, [C,1,1], [C] or [1]"),
-            ))
+        match constant {
+            Some(_) => {
+                self.arity(ins, "1 (with a constant)", ins.len() == 1)?;
+                let (_, cshape) = self.tensor("constant");
+                self.broadcast(&ins[0], cshape)
+            }
+            None => {
+                self.arity(ins, "2", ins.len() == 2)?;
+                self.broadcast(&ins[0], &ins[1])
+            }
         }
     }
+
+    /// The broadcast shape of `a` and `b`, or an error naming both.
+    fn broadcast(&self, a: &[usize], b: &[usize]) -> Result<Vec<usize>, GraphError> {
+        broadcast_shapes(a, b).ok_or_else(|| {
+            self.input_shape(
+                b,
+                format!("a shape that broadcasts against {a:?} (same rank, each axis equal or 1)"),
+            )
+        })
+    }
+}
+
+/// Broadcasting of two per-sample shapes: equal rank with every axis equal or 1 on one side
+/// (ONNX's multidirectional rule once the batch is set aside), or one of the forms bundles
+/// have always used — `[1]` for a scalar, `[C]` per channel of `[C, H, W]`.
+pub fn broadcast_shapes(a: &[usize], b: &[usize]) -> Option<Vec<usize>> {
+    let legacy = |small: &[usize], big: &[usize]| {
+        small != big && (small == [1] || (big.len() == 3 && small == [big[0]]))
+    };
+    if legacy(b, a) {
+        return Some(a.to_vec());
+    }
+    if legacy(a, b) {
+        return Some(b.to_vec());
+    }
+    if a.len() != b.len() {
+        return None;
+    }
+    a.iter()
+        .zip(b)
+        .map(|(&x, &y)| match (x, y) {
+            _ if x == y => Some(x),
+            (1, y) => Some(y),
+            (x, 1) => Some(x),
+            _ => None,
+        })
+        .collect()
 }

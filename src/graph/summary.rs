@@ -6,8 +6,10 @@
 //!   parameters (PyTorch keeps them as buffers, outside `parameters()`);
 //! - multiply-adds count convolutions and dense layers only: for a convolution,
 //!   `out_c · out_h · out_w · (in_c / groups) · kh · kw`; for a dense layer, `in · out`.
-//!   Element-wise ops, pooling and normalisation are left out, as in He et al. (2016) and
-//!   Sandler et al. (2018).
+//!   Element-wise ops, pooling, normalisation and data movement (transpose, slice, gather,
+//!   concat, expand, tile) are left out, as in He et al. (2016) and Sandler et al. (2018); a
+//!   dense layer over the last axis of a larger value costs `in · out` per position; layer
+//!   norm's scale and bias and constant operands of element-wise ops count as parameters.
 
 use serde::Serialize;
 
@@ -63,11 +65,21 @@ impl Summary {
                     )
                 }
                 Op::Dense { weight, bias, .. } => {
+                    // Over the last axis: every position of the other axes is one product.
                     let w = count(weight);
-                    (w + bias.as_deref().map_or(0, count), w)
+                    let outputs = out.last().copied().unwrap_or(1).max(1) as u64;
+                    (
+                        w + bias.as_deref().map_or(0, count),
+                        w * (out_elems / outputs),
+                    )
                 }
                 Op::BatchNorm { gamma, beta, .. } => (count(gamma) + count(beta), 0),
-                Op::Add { constant: Some(c) } | Op::Mul { constant: Some(c) } => (count(c), 0),
+                Op::LayerNorm { scale, bias, .. } => {
+                    (count(scale) + bias.as_deref().map_or(0, count), 0)
+                }
+                op if op.binary().is_some_and(|(_, c, _)| c.is_some()) => {
+                    (op.binary().and_then(|(_, c, _)| c).map_or(0, count), 0)
+                }
                 _ => (0, 0),
             };
             layers.push(LayerRow {

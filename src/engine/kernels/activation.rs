@@ -36,6 +36,22 @@ pub enum Activation {
     Gelu,
     /// `x/2 * (1 + tanh(sqrt(2/pi) * (x + 0.044715 x^3)))`.
     GeluTanh,
+    /// `√x` (NaN below 0).
+    Sqrt,
+    /// `1 / x`.
+    Reciprocal,
+    /// `|x|`.
+    Abs,
+    /// `-x`.
+    Neg,
+    /// `e^x`.
+    Exp,
+    /// `ln x` (NaN below 0, -∞ at 0).
+    Log,
+    /// The error function.
+    Erf,
+    /// `x^exponent`.
+    Pow { exponent: f32 },
 }
 
 /// `if a > b { a } else { b }`: the rule of [`Simd::max`], so scalar and vector code agree,
@@ -76,6 +92,14 @@ impl Activation {
                 let u = (2.0 / std::f64::consts::PI).sqrt() * (x + 0.044715 * x * x * x);
                 (x * sigmoid64(2.0 * u)) as f32
             }
+            Activation::Sqrt => f64::from(x).sqrt() as f32,
+            Activation::Reciprocal => (1.0 / f64::from(x)) as f32,
+            Activation::Abs => x.abs(),
+            Activation::Neg => -x,
+            Activation::Exp => f64::from(x).exp() as f32,
+            Activation::Log => f64::from(x).ln() as f32,
+            Activation::Erf => erf(x),
+            Activation::Pow { exponent } => pow(x, exponent),
             cheap => cheap.apply_cheap(x),
         }
     }
@@ -156,6 +180,20 @@ pub(crate) fn apply_vec<S: Simd>(s: S, act: Activation, x: S::V) -> S::V {
             s.div(s.mul(x, t), s.splat(6.0))
         }
         _ => x,
+    }
+}
+
+/// `x^e` as ONNX's `Pow` (numpy's `power` for floats): squares, square roots and whole powers
+/// exactly as their own operations round; anything else through `f64`.
+fn pow(x: f32, e: f32) -> f32 {
+    if e == 2.0 {
+        x * x
+    } else if e == 1.0 {
+        x
+    } else if e == 0.5 {
+        f64::from(x).sqrt() as f32
+    } else {
+        f64::from(x).powf(f64::from(e)) as f32
     }
 }
 

@@ -6,8 +6,11 @@
 pub mod activation;
 mod copy;
 pub mod depthwise;
+pub mod elementwise;
 pub mod gemm;
 pub mod isa;
+pub mod layout;
+pub mod norm;
 pub mod peak;
 pub mod pool;
 mod simd;

@@ -161,22 +161,23 @@ pub fn softmax(c: usize, inner: usize, input: &[f32], output: &mut [f32]) {
     }
 }
 
-/// Constant padding of a `[C, H, W]` sample by top, left, bottom, right.
+/// Constant padding of a `[C, H, W]` sample by top, left, bottom, right, and by
+/// `channels[0]` planes before and `channels[1]` after.
 pub fn pad(
-    c: usize,
-    h: usize,
-    w: usize,
+    [c, h, w]: [usize; 3],
     padding: [usize; 4],
+    channels: [usize; 2],
     value: f32,
     input: &[f32],
     output: &mut [f32],
 ) {
     let (oh, ow) = (h + padding[0] + padding[2], w + padding[1] + padding[3]);
-    output[..c * oh * ow].fill(value);
+    output[..(c + channels[0] + channels[1]) * oh * ow].fill(value);
     for ch in 0..c {
         for y in 0..h {
             let src = &input[(ch * h + y) * w..][..w];
-            let dst = &mut output[(ch * oh + y + padding[0]) * ow + padding[1]..][..w];
+            let at = ((ch + channels[0]) * oh + y + padding[0]) * ow + padding[1];
+            let dst = &mut output[at..][..w];
             dst.copy_from_slice(src);
         }
     }
@@ -196,44 +197,6 @@ pub fn channel_affine(
         let dst = &mut output[ch * inner..][..inner];
         for (d, &x) in dst.iter_mut().zip(src) {
             *d = x * s + t;
-        }
-    }
-}
-
-/// How the second operand of an element-wise op lines up with the first.
-#[derive(Clone, Copy, Debug, PartialEq, Eq)]
-pub enum Broadcast {
-    /// Same shape.
-    Full,
-    /// One value per channel, repeated over `inner` positions.
-    PerChannel { inner: usize },
-    /// One value for everything.
-    Scalar,
-}
-
-/// Element-wise `a ∘ b` where `b` is broadcast against `a` as `how` says.
-pub fn binary(how: Broadcast, mul: bool, a: &[f32], b: &[f32], out: &mut [f32]) {
-    let f = |x: f32, y: f32| if mul { x * y } else { x + y };
-    match how {
-        Broadcast::Full => {
-            for ((o, &x), &y) in out.iter_mut().zip(a).zip(b) {
-                *o = f(x, y);
-            }
-        }
-        Broadcast::PerChannel { inner } => {
-            for (ch, &y) in b.iter().enumerate() {
-                let src = &a[ch * inner..][..inner];
-                let dst = &mut out[ch * inner..][..inner];
-                for (o, &x) in dst.iter_mut().zip(src) {
-                    *o = f(x, y);
-                }
-            }
-        }
-        Broadcast::Scalar => {
-            let y = b[0];
-            for (o, &x) in out.iter_mut().zip(a) {
-                *o = f(x, y);
-            }
         }
     }
 }

@@ -5,6 +5,9 @@ use std::collections::HashMap;
 
 use super::ValueId;
 use crate::engine::kernels::activation::Activation;
+use crate::engine::kernels::layout::StridedCopy;
+use crate::engine::kernels::norm::ReducePlan;
+use crate::graph::BinaryKind;
 
 /// Internal node before lowering. Weights borrow from the bundle (`'w`) until something
 /// changes them (folding), so planning copies only what it rewrites.
@@ -56,13 +59,30 @@ pub(super) enum IrKind<'w> {
     },
     GlobalAvgPool,
     Binary {
-        mul: bool,
+        kind: BinaryKind,
         constant: Option<(Vec<f32>, Vec<usize>)>,
+        constant_first: bool,
     },
-    Concat,
+    Concat {
+        axis: usize,
+    },
+    Copy(StridedCopy),
+    Gather {
+        axis: usize,
+        indices: Vec<usize>,
+    },
+    LayerNorm {
+        scale: Vec<f32>,
+        bias: Option<Vec<f32>>,
+        axis: usize,
+        count: usize,
+        epsilon: f32,
+    },
+    Reduce(ReducePlan),
     Softmax,
     Pad {
         padding: [usize; 4],
+        channels: [usize; 2],
         value: f32,
     },
     /// Removed by a fusion.
@@ -99,18 +119,38 @@ pub(super) fn fuse(
     alias_of: &[ValueId],
     folded: &mut Vec<String>,
 ) {
-    let producer_of = |nodes: &Vec<IrNode<'_>>| -> HashMap<ValueId, usize> {
-        nodes
-            .iter()
-            .enumerate()
-            .filter(|(_, n)| !matches!(n.kind, IrKind::Gone))
-            .map(|(i, n)| (n.output, i))
-            .collect()
-    };
-
     // Every fusion below needs a direct connection: through a reshape, "per channel" would
     // no longer mean the same channels.
-    // Batch norm into the conv or dense layer feeding it.
+    let g = Links {
+        graph_output,
+        value_shape,
+        alias_of,
+    };
+    fold_batch_norms(nodes, &g, folded);
+    fuse_residual_adds(nodes, &g, folded);
+    fuse_activations(nodes, &g, folded);
+    nodes.retain(|n| !matches!(n.kind, IrKind::Gone));
+}
+
+/// What the fusions need to know about values besides the nodes.
+struct Links<'a> {
+    graph_output: ValueId,
+    value_shape: &'a [Vec<usize>],
+    alias_of: &'a [ValueId],
+}
+
+fn producer_of(nodes: &[IrNode<'_>]) -> HashMap<ValueId, usize> {
+    nodes
+        .iter()
+        .enumerate()
+        .filter(|(_, n)| !matches!(n.kind, IrKind::Gone))
+        .map(|(i, n)| (n.output, i))
+        .collect()
+}
+
+/// Batch norm into the conv or dense layer feeding it.
+fn fold_batch_norms(nodes: &mut [IrNode<'_>], g: &Links<'_>, folded: &mut Vec<String>) {
+    let (graph_output, value_shape, alias_of) = (g.graph_output, g.value_shape, g.alias_of);
     for i in 0..nodes.len() {
         let IrKind::BatchNorm { .. } = nodes[i].kind else {
             continue;
@@ -124,17 +164,20 @@ pub(super) fn fuse(
         if alias_of[src] != src || count[src] != 1 {
             continue;
         }
-        let foldable = matches!(
-            nodes[p].kind,
+        // A dense layer's outputs are batch norm's channels only for a flat value; over the
+        // last axis of a larger one, its outputs are not the channel axis.
+        let foldable = match nodes[p].kind {
             IrKind::Conv {
                 act: Activation::Identity,
                 residual: None,
                 ..
-            } | IrKind::Dense {
+            } => true,
+            IrKind::Dense {
                 act: Activation::Identity,
                 ..
-            }
-        );
+            } => value_shape[src].len() == 1,
+            _ => false,
+        };
         if !foldable {
             continue;
         }
@@ -185,12 +228,16 @@ pub(super) fn fuse(
         nodes[p].output = out;
         folded.push(format!("{bn_name} folded into {}", nodes[p].name));
     }
+}
 
-    // Residual add into a conv producing one operand; the conv moves to the add's place.
+/// Residual add into a conv producing one operand; the conv moves to the add's place.
+fn fuse_residual_adds(nodes: &mut [IrNode<'_>], g: &Links<'_>, folded: &mut Vec<String>) {
+    let (graph_output, value_shape, alias_of) = (g.graph_output, g.value_shape, g.alias_of);
     for i in 0..nodes.len() {
         let IrKind::Binary {
             constant: None,
-            mul: false,
+            kind: BinaryKind::Add,
+            ..
         } = nodes[i].kind
         else {
             continue;
@@ -237,8 +284,11 @@ pub(super) fn fuse(
         conv.output = nodes[i].output;
         nodes[i] = conv;
     }
+}
 
-    // Activation into the conv or dense layer feeding it.
+/// Activation into the conv or dense layer feeding it.
+fn fuse_activations(nodes: &mut [IrNode<'_>], g: &Links<'_>, folded: &mut Vec<String>) {
+    let (graph_output, alias_of) = (g.graph_output, g.alias_of);
     for i in 0..nodes.len() {
         let IrKind::Act(a) = nodes[i].kind else {
             continue;
@@ -266,5 +316,4 @@ pub(super) fn fuse(
         folded.push(format!("{} fused into {}", nodes[i].name, nodes[p].name));
         nodes[p].output = out;
     }
-    nodes.retain(|n| !matches!(n.kind, IrKind::Gone));
 }

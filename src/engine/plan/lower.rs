@@ -3,9 +3,12 @@
 use super::fuse::{IrKind, IrNode};
 use super::{ConvKind, ConvStep, Plan, Step, StepKind, ValueId};
 use crate::engine::kernels::depthwise::PackedDepthwise;
+use crate::engine::kernels::elementwise::Broadcast;
 use crate::engine::kernels::gemm::{ConvGeom, PackedWeights};
 use crate::engine::kernels::isa::Isa;
-use crate::engine::kernels::pool::{Broadcast, PoolGeom};
+use crate::engine::kernels::layout::{merge_axes, row_major_strides};
+use crate::engine::kernels::pool::PoolGeom;
+use crate::graph::BinaryKind;
 
 pub(super) fn lower(
     nodes: Vec<IrNode<'_>>,
@@ -18,165 +21,25 @@ pub(super) fn lower(
     let value_len: Vec<usize> = value_shape.iter().map(|s| s.iter().product()).collect();
     let mut steps = Vec::with_capacity(nodes.len());
     for n in nodes {
-        let in_shape = &value_shape[n.inputs[0]];
-        let out_shape = &value_shape[n.output];
         let mut inputs = n.inputs;
+        let in_shape = &value_shape[inputs[0]];
+        let out_shape = &value_shape[n.output];
         let kind = match n.kind {
-            IrKind::Conv {
-                weight,
-                bias,
-                wshape,
-                stride,
-                dilation,
-                padding,
-                groups,
-                residual,
-                act,
-            } => {
-                let [oc, icg, kh, kw] = wshape;
-                let geom = ConvGeom {
-                    in_c: in_shape[0],
-                    in_h: in_shape[1],
-                    in_w: in_shape[2],
-                    kh,
-                    kw,
-                    stride_h: stride[0],
-                    stride_w: stride[1],
-                    dil_h: dilation[0],
-                    dil_w: dilation[1],
-                    pad_top: padding[0],
-                    pad_left: padding[1],
-                    out_h: out_shape[1],
-                    out_w: out_shape[2],
-                };
-                let kind = if groups > 1 && icg == 1 && groups == in_shape[0] {
-                    ConvKind::Depthwise(PackedDepthwise::pack(isa, &weight, oc, kh, kw))
-                } else {
-                    let ocg = oc / groups;
-                    let k = icg * kh * kw;
-                    let packed = (0..groups)
-                        .map(|g| {
-                            PackedWeights::pack(
-                                isa,
-                                &weight[g * ocg * k..(g + 1) * ocg * k],
-                                ocg,
-                                k,
-                            )
-                        })
-                        .collect();
-                    let pointwise =
-                        kh == 1 && kw == 1 && stride == [1, 1] && padding == [0, 0, 0, 0];
-                    ConvKind::Gemm {
-                        groups: packed,
-                        pointwise,
-                    }
-                };
-                StepKind::Conv(Box::new(ConvStep {
-                    geom,
-                    groups,
-                    out_c: oc,
-                    kind,
-                    bias,
-                    residual,
-                    act,
-                }))
-            }
-            IrKind::Dense {
-                weight,
-                bias,
-                out,
-                act,
-            } => StepKind::Dense {
-                weights: PackedWeights::pack(isa, &weight, out, weight.len() / out),
-                bias,
-                act,
-            },
-            IrKind::BatchNorm {
-                gamma,
-                beta,
-                mean,
-                variance,
-                epsilon,
-            } => {
-                let mut scale = Vec::with_capacity(gamma.len());
-                let mut shift = Vec::with_capacity(gamma.len());
-                for c in 0..gamma.len() {
-                    let s =
-                        f64::from(gamma[c]) / (f64::from(variance[c]) + f64::from(epsilon)).sqrt();
-                    scale.push(s as f32);
-                    shift.push((f64::from(beta[c]) - f64::from(mean[c]) * s) as f32);
-                }
-                StepKind::Affine {
-                    scale,
-                    shift,
-                    inner: in_shape[1..].iter().product(),
-                }
-            }
-            IrKind::Act(a) => StepKind::Act(a),
-            IrKind::MaxPool {
-                kernel,
-                stride,
-                padding,
-                dilation,
-            } => StepKind::MaxPool(pool_geom(
-                in_shape, out_shape, kernel, stride, padding, dilation,
-            )),
-            IrKind::AvgPool {
-                kernel,
-                stride,
-                padding,
-                count_include_pad,
-            } => StepKind::AvgPool {
-                geom: pool_geom(in_shape, out_shape, kernel, stride, padding, [1, 1]),
-                count_include_pad,
-            },
-            IrKind::GlobalAvgPool => StepKind::GlobalAvgPool {
-                c: in_shape[0],
-                plane: in_shape[1..].iter().product(),
-            },
-            IrKind::Binary { mul, constant } => {
-                let other_shape = match &constant {
-                    Some((_, s)) => s.clone(),
-                    None => value_shape[inputs[1]].clone(),
-                };
-                let mut first = in_shape.clone();
-                if constant.is_none() && value_len[inputs[1]] > value_len[inputs[0]] {
-                    // Put the full-size operand first; add and mul commute.
-                    inputs.swap(0, 1);
-                    first = value_shape[inputs[0]].clone();
-                }
-                let small = if constant.is_none() {
-                    value_shape[inputs[1]].clone()
-                } else {
-                    other_shape
-                };
-                let how = if small == first {
-                    Broadcast::Full
-                } else if small == [1] {
-                    Broadcast::Scalar
-                } else {
-                    Broadcast::PerChannel {
-                        inner: first[1..].iter().product(),
-                    }
-                };
-                let constant = constant.map(|(v, _)| v);
-                StepKind::Binary { mul, how, constant }
-            }
-            IrKind::Concat => StepKind::Concat {
-                sizes: inputs.iter().map(|&v| value_len[v]).collect(),
-            },
-            IrKind::Softmax => StepKind::Softmax {
-                c: in_shape[0],
-                inner: in_shape[1..].iter().product(),
-            },
-            IrKind::Pad { padding, value } => StepKind::Pad {
-                c: in_shape[0],
-                h: in_shape[1],
-                w: in_shape[2],
-                padding,
-                value,
-            },
             IrKind::Gone => continue,
+            IrKind::Conv { .. } => conv(n.kind, isa, in_shape, out_shape),
+            IrKind::Binary {
+                kind,
+                constant,
+                constant_first,
+            } => binary(
+                kind,
+                constant,
+                constant_first,
+                &mut inputs,
+                &value_shape,
+                out_shape,
+            ),
+            kind => other(kind, isa, &inputs, &value_shape, out_shape),
         };
         steps.push(Step {
             name: n.name,
@@ -185,9 +48,288 @@ pub(super) fn lower(
             output: n.output,
         });
     }
+    let (value_buffer, buffer_len) = assign_buffers(&steps, &value_len, &alias_of, graph_output);
+    Plan {
+        isa,
+        steps,
+        input_shape: value_shape[0].clone(),
+        output_shape: value_shape[graph_output].clone(),
+        value_len,
+        value_buffer,
+        buffer_len,
+        input: 0,
+        output: graph_output,
+        folded,
+    }
+}
 
-    // Buffers: each step's output gets a free buffer; a buffer is freed after the last step
-    // that reads any value stored in it. A step's output never shares a buffer with its inputs.
+fn conv(kind: IrKind<'_>, isa: Isa, in_shape: &[usize], out_shape: &[usize]) -> StepKind {
+    let IrKind::Conv {
+        weight,
+        bias,
+        wshape,
+        stride,
+        dilation,
+        padding,
+        groups,
+        residual,
+        act,
+    } = kind
+    else {
+        unreachable!("called for convolutions")
+    };
+    let [oc, icg, kh, kw] = wshape;
+    let geom = ConvGeom {
+        in_c: in_shape[0],
+        in_h: in_shape[1],
+        in_w: in_shape[2],
+        kh,
+        kw,
+        stride_h: stride[0],
+        stride_w: stride[1],
+        dil_h: dilation[0],
+        dil_w: dilation[1],
+        pad_top: padding[0],
+        pad_left: padding[1],
+        out_h: out_shape[1],
+        out_w: out_shape[2],
+    };
+    let kind = if groups > 1 && icg == 1 && groups == in_shape[0] {
+        ConvKind::Depthwise(PackedDepthwise::pack(isa, &weight, oc, kh, kw))
+    } else {
+        let ocg = oc / groups;
+        let k = icg * kh * kw;
+        let packed = (0..groups)
+            .map(|g| PackedWeights::pack(isa, &weight[g * ocg * k..(g + 1) * ocg * k], ocg, k))
+            .collect();
+        let pointwise = kh == 1 && kw == 1 && stride == [1, 1] && padding == [0, 0, 0, 0];
+        ConvKind::Gemm {
+            groups: packed,
+            pointwise,
+        }
+    };
+    StepKind::Conv(Box::new(ConvStep {
+        geom,
+        groups,
+        out_c: oc,
+        kind,
+        bias,
+        residual,
+        act,
+    }))
+}
+
+/// Every kind but convolutions and binary ops.
+fn other(
+    kind: IrKind<'_>,
+    isa: Isa,
+    inputs: &[ValueId],
+    value_shape: &[Vec<usize>],
+    out_shape: &[usize],
+) -> StepKind {
+    let in_shape = &value_shape[inputs[0]];
+    let product = |s: &[usize]| -> usize { s.iter().product() };
+    match kind {
+        IrKind::Dense {
+            weight,
+            bias,
+            out,
+            act,
+        } => StepKind::Dense {
+            weights: PackedWeights::pack(isa, &weight, out, weight.len() / out),
+            bias,
+            act,
+            features: in_shape[in_shape.len() - 1],
+        },
+        IrKind::BatchNorm {
+            gamma,
+            beta,
+            mean,
+            variance,
+            epsilon,
+        } => {
+            let mut scale = Vec::with_capacity(gamma.len());
+            let mut shift = Vec::with_capacity(gamma.len());
+            for c in 0..gamma.len() {
+                let s = f64::from(gamma[c]) / (f64::from(variance[c]) + f64::from(epsilon)).sqrt();
+                scale.push(s as f32);
+                shift.push((f64::from(beta[c]) - f64::from(mean[c]) * s) as f32);
+            }
+            StepKind::Affine {
+                scale,
+                shift,
+                inner: product(&in_shape[1..]),
+            }
+        }
+        IrKind::Act(a) => StepKind::Act(a),
+        IrKind::MaxPool {
+            kernel,
+            stride,
+            padding,
+            dilation,
+        } => StepKind::MaxPool(pool_geom(
+            in_shape, out_shape, kernel, stride, padding, dilation,
+        )),
+        IrKind::AvgPool {
+            kernel,
+            stride,
+            padding,
+            count_include_pad,
+        } => StepKind::AvgPool {
+            geom: pool_geom(in_shape, out_shape, kernel, stride, padding, [1, 1]),
+            count_include_pad,
+        },
+        IrKind::GlobalAvgPool => StepKind::GlobalAvgPool {
+            c: in_shape[0],
+            plane: product(&in_shape[1..]),
+        },
+        IrKind::Softmax => StepKind::Softmax {
+            c: in_shape[0],
+            inner: product(&in_shape[1..]),
+        },
+        IrKind::Pad {
+            padding,
+            channels,
+            value,
+        } => StepKind::Pad {
+            c: in_shape[0],
+            h: in_shape[1],
+            w: in_shape[2],
+            padding,
+            channels,
+            value,
+        },
+        kind => layout(kind, inputs, value_shape),
+    }
+}
+
+/// The ops that move or normalise data along axes.
+fn layout(kind: IrKind<'_>, inputs: &[ValueId], value_shape: &[Vec<usize>]) -> StepKind {
+    let in_shape = &value_shape[inputs[0]];
+    let product = |s: &[usize]| -> usize { s.iter().product() };
+    match kind {
+        IrKind::Concat { axis } => StepKind::Concat {
+            outer: product(&in_shape[..axis]),
+            blocks: inputs
+                .iter()
+                .map(|&v| product(&value_shape[v][axis..]))
+                .collect(),
+        },
+        IrKind::Copy(c) => StepKind::Copy(c),
+        IrKind::Gather { axis, indices } => StepKind::Gather {
+            outer: product(&in_shape[..axis]),
+            len: in_shape[axis],
+            inner: product(&in_shape[axis + 1..]),
+            indices,
+        },
+        IrKind::LayerNorm {
+            scale,
+            bias,
+            axis,
+            count,
+            epsilon,
+        } => StepKind::LayerNorm {
+            dims: [
+                product(&in_shape[..axis]),
+                product(&in_shape[axis..axis + count]),
+                product(&in_shape[axis + count..]),
+            ],
+            scale,
+            bias,
+            epsilon,
+        },
+        IrKind::Reduce(r) => StepKind::Reduce(r),
+        _ => unreachable!("every other kind is lowered by the callers"),
+    }
+}
+
+/// Broadcast strides of an operand of shape `shape` against the output `out`: 0 on axes
+/// where the operand has size 1. The older per-channel `[C]` form stands for `[C, 1, 1]`, and
+/// `[1]` for all ones.
+fn operand_strides(shape: &[usize], out: &[usize]) -> Vec<isize> {
+    let full: Vec<usize> = if shape.len() == out.len() {
+        shape.to_vec()
+    } else if shape == [1] {
+        vec![1; out.len()]
+    } else {
+        let mut s = shape.to_vec();
+        s.resize(out.len(), 1);
+        s
+    };
+    let strides = row_major_strides(&full);
+    (0..out.len())
+        .map(|d| {
+            if full[d] == 1 && out[d] != 1 {
+                0
+            } else {
+                strides[d]
+            }
+        })
+        .collect()
+}
+
+/// A binary op: the operand with the output's shape goes first where the op allows, so the
+/// common layouts (equal, per channel, scalar) get their own loops.
+fn binary(
+    kind: BinaryKind,
+    constant: Option<(Vec<f32>, Vec<usize>)>,
+    constant_first: bool,
+    inputs: &mut [ValueId],
+    value_shape: &[Vec<usize>],
+    out_shape: &[usize],
+) -> StepKind {
+    let (b_shape, mut swapped) = match &constant {
+        Some((_, s)) => (s.clone(), constant_first),
+        None => (value_shape[inputs[1]].clone(), false),
+    };
+    let mut a_shape = value_shape[inputs[0]].clone();
+    let mut b_shape = b_shape;
+    let a_full = a_shape == out_shape;
+    if constant.is_none() && !a_full && b_shape == out_shape {
+        // Put the full-size value first; the `swapped` flag keeps the operand order.
+        inputs.swap(0, 1);
+        std::mem::swap(&mut a_shape, &mut b_shape);
+        swapped = true;
+    }
+    let constant = constant.map(|(v, _)| v);
+    let b_len: usize = b_shape.iter().product();
+    let how = if a_shape == out_shape && b_shape == out_shape {
+        Broadcast::Full
+    } else if a_shape == out_shape && b_len == 1 {
+        Broadcast::Scalar
+    } else if a_shape == out_shape && per_channel(&b_shape, out_shape) {
+        Broadcast::PerChannel {
+            inner: out_shape[1..].iter().product(),
+        }
+    } else {
+        let sa = operand_strides(&a_shape, out_shape);
+        let sb = operand_strides(&b_shape, out_shape);
+        let (shape, [a, b]) = merge_axes(out_shape, [&sa, &sb]);
+        Broadcast::General { shape, a, b }
+    };
+    StepKind::Binary {
+        kind,
+        how,
+        swapped,
+        constant,
+    }
+}
+
+/// `[C, 1, ...]` (or the older `[C]` of `[C, H, W]`) against an output `[C, ...]`.
+fn per_channel(b: &[usize], out: &[usize]) -> bool {
+    let same_rank = b.len() == out.len() && b[0] == out[0] && b[1..].iter().all(|&d| d == 1);
+    out.len() > 1 && (same_rank || (out.len() == 3 && b == [out[0]]))
+}
+
+/// Each step's output gets a free buffer; a buffer is freed after the last step that reads
+/// any value stored in it. A step's output never shares a buffer with its inputs. Returns
+/// each value's buffer and each buffer's per-sample length.
+fn assign_buffers(
+    steps: &[Step],
+    value_len: &[usize],
+    alias_of: &[ValueId],
+    graph_output: ValueId,
+) -> (Vec<usize>, Vec<usize>) {
     let n_values = value_len.len();
     let mut last_use = vec![0usize; n_values];
     for (i, s) in steps.iter().enumerate() {
@@ -236,18 +378,7 @@ pub(super) fn lower(
     for v in 0..n_values {
         value_buffer[v] = value_buffer[alias_of[v]];
     }
-    Plan {
-        isa,
-        steps,
-        input_shape: value_shape[0].clone(),
-        output_shape: value_shape[graph_output].clone(),
-        value_len,
-        value_buffer,
-        buffer_len,
-        input: 0,
-        output: graph_output,
-        folded,
-    }
+    (value_buffer, buffer_len)
 }
 
 fn pool_geom(

@@ -13,21 +13,25 @@
 //! Folding and fusing change rounding only (a product of two f32 factors is formed once,
 //! rather than in two steps), well inside the executor's tolerance.
 
-use std::borrow::Cow;
 use std::collections::HashMap;
 
 mod fuse;
 mod lower;
+mod translate;
 
 use super::kernels::activation::Activation;
 use super::kernels::depthwise::PackedDepthwise;
+use super::kernels::elementwise::Broadcast;
 use super::kernels::gemm::{ConvGeom, PackedWeights};
 use super::kernels::isa::Isa;
-use super::kernels::pool::{Broadcast, PoolGeom};
+use super::kernels::layout::StridedCopy;
+use super::kernels::norm::ReducePlan;
+use super::kernels::pool::PoolGeom;
 use crate::bundle::Bundle;
-use crate::graph::{GeluApproximation, Op, WeightLayout};
-use fuse::{IrKind, IrNode, fuse};
+use crate::graph::BinaryKind;
+use fuse::{IrNode, fuse};
 use lower::lower;
+use translate::{Translated, translate};
 
 /// Index of a value in the plan.
 pub(crate) type ValueId = usize;
@@ -56,10 +60,14 @@ pub(crate) enum ConvKind {
 /// What one step does.
 pub(crate) enum StepKind {
     Conv(Box<ConvStep>),
+    /// A dense layer over the last axis: every position of the value's other axes (every
+    /// sample, for a flat value) is one GEMM column.
     Dense {
         weights: PackedWeights,
         bias: Option<Vec<f32>>,
         act: Activation,
+        /// Length of the last axis.
+        features: usize,
     },
     Affine {
         scale: Vec<f32>,
@@ -76,18 +84,36 @@ pub(crate) enum StepKind {
         c: usize,
         plane: usize,
     },
-    /// `a ∘ b` with `b` another value or a constant.
+    /// `a ∘ b` (`b ∘ a` when `swapped`): `a` is `inputs[0]`, `b` the constant or
+    /// `inputs[1]`, lined up as `how` says.
     Binary {
-        mul: bool,
+        kind: BinaryKind,
         how: Broadcast,
-        /// When the value operand is the broadcast (smaller) one, inputs are swapped so that
-        /// `inputs[0]` is always the full-size operand; add and mul commute.
+        swapped: bool,
         constant: Option<Vec<f32>>,
     },
+    /// Each input seen as `[outer, blocks[i]]`, joined block by block.
     Concat {
-        /// Elements per sample of each input.
-        sizes: Vec<usize>,
+        outer: usize,
+        blocks: Vec<usize>,
     },
+    /// Transpose, slice, expand or tile.
+    Copy(StridedCopy),
+    /// `[outer, len, inner]` → `[outer, indices.len(), inner]`.
+    Gather {
+        outer: usize,
+        len: usize,
+        inner: usize,
+        indices: Vec<usize>,
+    },
+    /// Normalisation of `[outer, block, inner]` over `block`.
+    LayerNorm {
+        dims: [usize; 3],
+        scale: Vec<f32>,
+        bias: Option<Vec<f32>>,
+        epsilon: f32,
+    },
+    Reduce(ReducePlan),
     Softmax {
         c: usize,
         inner: usize,
@@ -97,6 +123,7 @@ pub(crate) enum StepKind {
         h: usize,
         w: usize,
         padding: [usize; 4],
+        channels: [usize; 2],
         value: f32,
     },
 }
@@ -144,36 +171,12 @@ impl std::fmt::Debug for Plan {
             .finish()
     }
 }
-fn activation_of(op: &Op) -> Option<Activation> {
-    Some(match *op {
-        Op::Relu => Activation::Relu,
-        Op::Clip { min, max } => Activation::Clip { min, max },
-        Op::LeakyRelu { slope } => Activation::LeakyRelu { slope },
-        Op::Sigmoid => Activation::Sigmoid,
-        Op::Tanh => Activation::Tanh,
-        Op::HardSigmoid { alpha, beta } => Activation::HardSigmoid { alpha, beta },
-        Op::HardSwish => Activation::HardSwish,
-        Op::Silu => Activation::Silu,
-        Op::Gelu {
-            approximation: GeluApproximation::None,
-        } => Activation::Gelu,
-        Op::Gelu {
-            approximation: GeluApproximation::Tanh,
-        } => Activation::GeluTanh,
-        _ => return None,
-    })
-}
-
 impl Plan {
     /// Plans `bundle` for instruction set `isa`. The bundle was verified when it was read, so
     /// every name resolves and every shape fits; planning cannot fail.
     pub fn new(bundle: &Bundle, isa: Isa) -> Plan {
         let graph = &bundle.manifest().graph;
         let shapes = bundle.shapes();
-        // Verified bundle: every tensor a node names exists (shapes::infer checked it).
-        let weights =
-            |name: &str| -> Cow<'_, [f32]> { bundle.tensor(name).expect("verified tensor") };
-        let tensor = |name: &str| -> Vec<f32> { weights(name).into_owned() };
 
         // Values: graph input first, then one per node output; aliases point at their source.
         let mut ids: HashMap<&str, ValueId> = HashMap::new();
@@ -190,121 +193,19 @@ impl Plan {
             let out = value_shape.len();
             value_shape.push(out_shape.clone());
             ids.insert(node.output.as_str(), out);
-            let kind = match &node.op {
-                Op::Flatten | Op::Reshape { .. } | Op::Identity => {
-                    alias_of.push(alias_of[inputs[0]]);
-                    continue;
+            let in_shape = &value_shape[inputs[0]];
+            match translate(bundle, &node.op, in_shape, out_shape) {
+                Translated::Alias => alias_of.push(alias_of[inputs[0]]),
+                Translated::Node(kind) => {
+                    alias_of.push(out);
+                    nodes.push(IrNode {
+                        name: node.name.clone(),
+                        kind,
+                        inputs,
+                        output: out,
+                    });
                 }
-                Op::Conv2d {
-                    weight,
-                    bias,
-                    stride,
-                    dilation,
-                    padding,
-                    groups,
-                } => {
-                    let ws = bundle.tensor_shape(weight).unwrap_or_default();
-                    IrKind::Conv {
-                        weight: weights(weight),
-                        bias: bias.as_deref().map(tensor),
-                        wshape: [ws[0], ws[1], ws[2], ws[3]],
-                        stride: *stride,
-                        dilation: *dilation,
-                        padding: *padding,
-                        groups: *groups,
-                        residual: None,
-                        act: Activation::Identity,
-                    }
-                }
-                Op::Dense {
-                    weight,
-                    bias,
-                    weight_layout,
-                } => {
-                    let ws = bundle.tensor_shape(weight).unwrap_or_default();
-                    let w = weights(weight);
-                    let (out, weight) = match weight_layout {
-                        WeightLayout::OutIn => (ws[0], w),
-                        WeightLayout::InOut => {
-                            let (inp, out) = (ws[0], ws[1]);
-                            let mut t = vec![0.0; w.len()];
-                            for i in 0..inp {
-                                for o in 0..out {
-                                    t[o * inp + i] = w[i * out + o];
-                                }
-                            }
-                            (out, Cow::Owned(t))
-                        }
-                    };
-                    IrKind::Dense {
-                        weight,
-                        bias: bias.as_deref().map(tensor),
-                        out,
-                        act: Activation::Identity,
-                    }
-                }
-                Op::BatchNorm {
-                    gamma,
-                    beta,
-                    mean,
-                    variance,
-                    epsilon,
-                } => IrKind::BatchNorm {
-                    gamma: tensor(gamma),
-                    beta: tensor(beta),
-                    mean: tensor(mean),
-                    variance: tensor(variance),
-                    epsilon: *epsilon,
-                },
-                Op::MaxPool {
-                    kernel,
-                    stride,
-                    padding,
-                    dilation,
-                    ..
-                } => IrKind::MaxPool {
-                    kernel: *kernel,
-                    stride: stride.unwrap_or(*kernel),
-                    padding: *padding,
-                    dilation: *dilation,
-                },
-                Op::AvgPool {
-                    kernel,
-                    stride,
-                    padding,
-                    count_include_pad,
-                    ..
-                } => IrKind::AvgPool {
-                    kernel: *kernel,
-                    stride: stride.unwrap_or(*kernel),
-                    padding: *padding,
-                    count_include_pad: *count_include_pad,
-                },
-                Op::GlobalAvgPool => IrKind::GlobalAvgPool,
-                Op::Add { constant } | Op::Mul { constant } => IrKind::Binary {
-                    mul: matches!(node.op, Op::Mul { .. }),
-                    constant: constant
-                        .as_deref()
-                        .map(|c| (tensor(c), bundle.tensor_shape(c).unwrap_or_default())),
-                },
-                Op::Concat => IrKind::Concat,
-                Op::Softmax => IrKind::Softmax,
-                Op::Pad { padding, value } => IrKind::Pad {
-                    padding: *padding,
-                    value: *value,
-                },
-                op => match activation_of(op) {
-                    Some(a) => IrKind::Act(a),
-                    None => unreachable!("every op kind is handled above"),
-                },
-            };
-            alias_of.push(out);
-            nodes.push(IrNode {
-                name: node.name.clone(),
-                kind,
-                inputs,
-                output: out,
-            });
+            }
         }
         let graph_output = ids[graph.output.as_str()];
         let mut folded = Vec::new();

@@ -1,6 +1,7 @@
-//! Layers with weights and the ops around them: convolution, batch normalisation, dense
-//! (Gemm, MatMul), element-wise add/mul, pooling, spatial means.
+//! Layers with weights and windows: convolution, batch normalisation, dense (Gemm, MatMul
+//! over the last axis), pooling.
 
+use super::elementwise::Simple;
 use super::{Converter, Ctx, Val};
 use crate::graph::build::NamedTensor;
 use crate::graph::{Graph, GraphInput, Node, Op, WeightLayout};
@@ -18,7 +19,7 @@ impl Converter {
         name: &str,
         ctx: &Ctx<'_>,
         inputs: &[Option<Val>],
-    ) -> Result<(Op, Vec<usize>, String), ImportError> {
+    ) -> Result<Simple, ImportError> {
         let (xn, s) = ctx.first_dynamic(inputs)?;
         if s.len() != 3 {
             return Err(ctx.unsupported(format!(
@@ -74,7 +75,7 @@ impl Converter {
         name: &str,
         ctx: &Ctx<'_>,
         inputs: &[Option<Val>],
-    ) -> Result<(Op, Vec<usize>, String), ImportError> {
+    ) -> Result<Simple, ImportError> {
         let (xn, s) = ctx.first_dynamic(inputs)?;
         if attr_int_checked(n, "training_mode")?.unwrap_or(0) != 0 {
             return Err(ctx.unsupported("training_mode is set; export the model in eval mode"));
@@ -115,7 +116,7 @@ impl Converter {
         name: &str,
         ctx: &Ctx<'_>,
         inputs: &[Option<Val>],
-    ) -> Result<(Op, Vec<usize>, String), ImportError> {
+    ) -> Result<Simple, ImportError> {
         let (xn, s) = ctx.first_dynamic(inputs)?;
         if s.len() != 1 {
             return Err(ctx.unsupported(format!("input A is [N, {s:?}], expected [N, K]")));
@@ -195,20 +196,23 @@ impl Converter {
         ctx: &Ctx<'_>,
         inputs: &[Option<Val>],
         out: &str,
-    ) -> Result<(Op, Vec<usize>, String), ImportError> {
+    ) -> Result<Simple, ImportError> {
         let (Some(Some(Val::Dyn { name: xn, shape: s })), Some(Some(Val::Const(b)))) =
             (inputs.first(), inputs.get(1))
         else {
             return Err(ctx.unsupported(
-                "only a computed [N, K] value times a constant [K, M] matrix is supported",
+                "only a computed [N, ..., K] value times a constant [K, M] matrix is supported",
             ));
         };
-        if s.len() != 1 || b.shape.len() != 2 || b.shape[0] != s[0] {
+        let k = s[s.len() - 1];
+        if b.shape.len() != 2 || b.shape[0] != k {
             return Err(ctx.unsupported(format!(
-                "shapes [N, {s:?}] × {:?}: only [N, K] × [K, M] is supported",
+                "shapes [N, {s:?}] × {:?}: only [N, ..., K] × [K, M] is supported",
                 b.shape
             )));
         }
+        let mut shape = s.clone();
+        *shape.last_mut().expect("rank ≥ 1") = b.shape[1];
         let wname = self.add_tensor(&format!("{name}.weight"), b.clone());
         self.dense_without_bias
             .insert(out.to_string(), self.nodes.len());
@@ -218,108 +222,9 @@ impl Converter {
                 bias: None,
                 weight_layout: WeightLayout::InOut,
             },
-            vec![b.shape[1]],
+            shape,
             xn.clone(),
         ))
-    }
-
-    /// Add and Mul. Returns `None` when the node was absorbed into an earlier one (a bias
-    /// `Add` after a `MatMul`).
-    pub(super) fn binary(
-        &mut self,
-        n: &NodeProto,
-        name: &str,
-        ctx: &Ctx<'_>,
-        inputs: &[Option<Val>],
-        out: &str,
-    ) -> Result<Option<(Op, Vec<usize>, String)>, ImportError> {
-        let mul = n.op_type == "Mul";
-        let (a, b) = match (inputs.first(), inputs.get(1)) {
-            (Some(Some(a)), Some(Some(b))) => (a, b),
-            _ => return Err(ctx.unsupported("needs two inputs")),
-        };
-        match (a, b) {
-            (
-                Val::Dyn {
-                    name: an,
-                    shape: ash,
-                },
-                Val::Dyn {
-                    name: bn,
-                    shape: bsh,
-                },
-            ) => {
-                let shape = if ash == bsh || is_channel_of(bsh, ash) {
-                    ash.clone()
-                } else if is_channel_of(ash, bsh) {
-                    bsh.clone()
-                } else {
-                    return Err(ctx.unsupported(format!(
-                        "operand shapes [N, {ash:?}] and [N, {bsh:?}] must be equal or one per channel"
-                    )));
-                };
-                let op = if mul {
-                    Op::Mul { constant: None }
-                } else {
-                    Op::Add { constant: None }
-                };
-                let (an, bn) = (an.clone(), bn.clone());
-                self.push(name, op, &[&an, &bn], out, shape);
-                Ok(None)
-            }
-            (Val::Dyn { name: xn, shape }, Val::Const(c))
-            | (Val::Const(c), Val::Dyn { name: xn, shape }) => {
-                let per_sample = const_per_sample(c, shape)
-                    .ok_or_else(|| ctx.unsupported(format!(
-                        "constant of shape {:?} does not broadcast against [N, {shape:?}] per channel or as a scalar",
-                        c.shape
-                    )))?;
-                // MatMul + Add(bias): make it the dense layer's bias.
-                if !mul
-                    && per_sample == *shape
-                    && shape.len() == 1
-                    && self.uses.get(xn).copied() == Some(1)
-                    && let Some(&i) = self.dense_without_bias.get(xn)
-                {
-                    let bname = self.add_tensor(
-                        &format!("{}.bias", self.nodes[i].name),
-                        ConstTensor::f32(per_sample.clone(), c.to_f32()),
-                    );
-                    if let Op::Dense { bias, .. } = &mut self.nodes[i].op {
-                        *bias = Some(bname);
-                    }
-                    self.nodes[i].output = out.to_string();
-                    self.dense_without_bias.remove(xn);
-                    self.notes.push(format!(
-                        "{name} (Add) became the bias of {}",
-                        self.nodes[i].name
-                    ));
-                    self.set(
-                        out,
-                        Val::Dyn {
-                            name: out.to_string(),
-                            shape: shape.clone(),
-                        },
-                    );
-                    return Ok(None);
-                }
-                let cname = self.add_tensor(
-                    &format!("{name}.constant"),
-                    ConstTensor::f32(per_sample, c.to_f32()),
-                );
-                let op = if mul {
-                    Op::Mul {
-                        constant: Some(cname),
-                    }
-                } else {
-                    Op::Add {
-                        constant: Some(cname),
-                    }
-                };
-                Ok(Some((op, shape.clone(), xn.clone())))
-            }
-            _ => unreachable!("a node with only constant inputs was folded"),
-        }
     }
 
     pub(super) fn pool(
@@ -327,7 +232,7 @@ impl Converter {
         n: &NodeProto,
         ctx: &Ctx<'_>,
         inputs: &[Option<Val>],
-    ) -> Result<(Op, Vec<usize>, String), ImportError> {
+    ) -> Result<Simple, ImportError> {
         let (xn, s) = ctx.first_dynamic(inputs)?;
         if s.len() != 3 {
             return Err(ctx.unsupported(format!("input [N, {s:?}] is not [N, C, H, W]")));
@@ -362,89 +267,6 @@ impl Converter {
         };
         let shape = conv_like_shape(ctx, s, &op, &self.tensors)?;
         Ok((op, shape, xn.clone()))
-    }
-
-    pub(super) fn reduce_mean(
-        &mut self,
-        n: &NodeProto,
-        name: &str,
-        ctx: &Ctx<'_>,
-        inputs: &[Option<Val>],
-        out: &str,
-    ) -> Result<(), ImportError> {
-        let (xn, s) = ctx.first_dynamic(inputs)?;
-        let axes = if self.opset >= 18 {
-            match inputs.get(1) {
-                Some(Some(Val::Const(t))) => Some(t.to_i64()),
-                Some(Some(Val::Dyn { .. })) => return Err(ctx.not_constant(1)),
-                _ => None,
-            }
-        } else {
-            attr_ints_checked(n, "axes")?
-        };
-        let rank = s.len() as i64 + 1;
-        let mut axes: Vec<i64> = axes
-            .unwrap_or_default()
-            .into_iter()
-            .map(|a| if a < 0 { a + rank } else { a })
-            .collect();
-        axes.sort_unstable();
-        if rank != 4 || axes != [2, 3] {
-            return Err(ctx.unsupported(format!(
-                "mean over axes {axes:?} of a rank-{rank} value; only the spatial mean (axes 2 and 3 of [N, C, H, W]) is supported"
-            )));
-        }
-        let keep = attr_int_checked(n, "keepdims")?.unwrap_or(1) != 0;
-        let (xn, c) = (xn.clone(), s[0]);
-        if keep {
-            self.push(name, Op::GlobalAvgPool, &[&xn], out, vec![c, 1, 1]);
-        } else {
-            let mid = format!("{out}.pooled");
-            self.push(name, Op::GlobalAvgPool, &[&xn], &mid, vec![c, 1, 1]);
-            let flat = self.unique_flat_name(name);
-            self.push(&flat, Op::Flatten, &[&mid], out, vec![c]);
-        }
-        Ok(())
-    }
-
-    fn unique_flat_name(&mut self, base: &str) -> String {
-        let mut name = format!("{base}.flatten");
-        let mut k = 1;
-        while !self.node_names.insert(name.clone()) {
-            name = format!("{base}.flatten_{k}");
-            k += 1;
-        }
-        name
-    }
-}
-
-/// `[C, 1, 1]` or `[C]` against `[C, H, W]`.
-fn is_channel_of(small: &[usize], big: &[usize]) -> bool {
-    big.len() == 3 && (small == [big[0], 1, 1] || small == [big[0]])
-}
-
-/// The per-sample form of an ONNX constant broadcast against a dynamic value of per-sample
-/// shape `shape`: equal, per channel `[C,1,1]`, or scalar `[1]`.
-fn const_per_sample(c: &ConstTensor, shape: &[usize]) -> Option<Vec<usize>> {
-    let rank = shape.len() + 1;
-    if c.shape.len() > rank {
-        return None;
-    }
-    // Left-pad to the full rank (numpy broadcasting), then drop the batch axis, which must be 1.
-    let mut full = vec![1usize; rank - c.shape.len()];
-    full.extend_from_slice(&c.shape);
-    if full[0] != 1 {
-        return None;
-    }
-    let ps = full[1..].to_vec();
-    if ps == shape {
-        Some(ps)
-    } else if ps.iter().all(|&d| d == 1) {
-        Some(vec![1])
-    } else if shape.len() == 3 && ps == [shape[0], 1, 1] {
-        Some(ps)
-    } else {
-        None
     }
 }
 

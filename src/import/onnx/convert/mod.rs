@@ -13,15 +13,18 @@
 
 use std::collections::{BTreeMap, HashMap, HashSet};
 
+mod elementwise;
 mod layers;
-mod reshape;
+mod layout;
+mod norm;
+mod patterns;
 
-use super::attr::{attr_float_checked, attr_int_checked, attr_string_checked};
+use super::attr::attr_int_checked;
 use super::fold::{can_fold, fold_node};
 use super::proto::onnx::{ModelProto, NodeProto, ValueInfoProto};
 use super::tensor::{ConstTensor, ExternalData};
 use crate::graph::build::NamedTensor;
-use crate::graph::{GeluApproximation, Graph, GraphInput, Node, Op};
+use crate::graph::{Graph, GraphInput, Node, Op};
 use crate::import::ImportError;
 
 /// Opsets of the default domain that the importer understands.
@@ -53,17 +56,40 @@ pub const SUPPORTED: &[&str] = &[
     "AveragePool",
     "GlobalAveragePool",
     "ReduceMean",
+    "ReduceMax",
+    "ReduceSum",
+    "ReduceL2",
+    "LayerNormalization",
     "Flatten",
     "Reshape",
     "Squeeze",
     "Unsqueeze",
+    "Transpose",
+    "Split",
+    "Slice",
+    "Gather",
     "Concat",
+    "Expand",
+    "Tile",
     "Pad",
     "Softmax",
     "Dropout",
     "Identity",
     "Shape",
     "Constant",
+    "Sub",
+    "Div",
+    "Pow",
+    "Max",
+    "Min",
+    "Sum",
+    "Sqrt",
+    "Reciprocal",
+    "Abs",
+    "Neg",
+    "Exp",
+    "Log",
+    "Erf",
 ];
 
 /// The converted model and what happened on the way.
@@ -116,6 +142,7 @@ pub fn convert(model: &ModelProto, external: &ExternalData) -> Result<Converted,
         folded: 0,
         notes: Vec::new(),
         source_ops: BTreeMap::new(),
+        fixed_batch: None,
     };
     for t in &graph.initializer {
         let ct = ConstTensor::from_proto(t, external)?;
@@ -161,6 +188,10 @@ pub fn convert(model: &ModelProto, external: &ExternalData) -> Result<Converted,
             problem: "the output is the input itself".into(),
         });
     }
+    let rewrites = patterns::fuse_layer_norms(&mut c.nodes, &mut c.tensors, &output);
+    c.notes.extend(rewrites);
+    let rewrites = patterns::channels_first_blocks(&mut c.nodes, &mut c.tensors, &output);
+    c.notes.extend(rewrites);
     let ends_in_softmax = c
         .nodes
         .iter()
@@ -235,6 +266,9 @@ struct Converter {
     folded: usize,
     notes: Vec<String>,
     source_ops: BTreeMap<String, usize>,
+    /// The input's fixed leading dimension, when the file has one: imported as the batch, so
+    /// reshape and expand targets that carry it mean "the batch".
+    fixed_batch: Option<i64>,
 }
 
 /// Shorthand for the context of a node's errors.
@@ -265,6 +299,37 @@ impl Ctx<'_> {
         }
     }
 
+    /// An ONNX axis of a value whose per-sample rank is `rank`, as a per-sample axis. The
+    /// batch axis is refused: a bundle computes every sample alone.
+    fn sample_axis(&self, axis: i64, rank: usize) -> Result<usize, ImportError> {
+        let full = rank as i64 + 1;
+        let a = if axis < 0 { axis + full } else { axis };
+        if a == 0 {
+            return Err(self.unsupported(format!(
+                "axis {axis} is the batch axis; only axes after the batch are supported"
+            )));
+        }
+        if !(1..full).contains(&a) {
+            return Err(self.unsupported(format!(
+                "axis {axis} is out of range for a rank-{full} value"
+            )));
+        }
+        Ok((a - 1) as usize)
+    }
+
+    /// Input `i`, which must be a constant (or omitted: `None`).
+    fn constant<'v>(
+        &self,
+        inputs: &'v [Option<Val>],
+        i: usize,
+    ) -> Result<Option<&'v ConstTensor>, ImportError> {
+        match inputs.get(i) {
+            None | Some(None) => Ok(None),
+            Some(Some(Val::Const(t))) => Ok(Some(t)),
+            Some(Some(Val::Dyn { .. })) => Err(self.not_constant(i)),
+        }
+    }
+
     fn not_constant(&self, index: usize) -> ImportError {
         ImportError::NotConstant {
             node: self.node.to_string(),
@@ -292,26 +357,32 @@ impl Converter {
             super::proto::tensor_input_dims(input).map_err(|problem| ImportError::Input {
                 problem: format!("{:?}: {problem}", input.name),
             })?;
-        if dims.len() != 2 && dims.len() != 4 {
+        if !(2..=4).contains(&dims.len()) {
+            // Classifiers take [batch, features], [batch, C, H, W], or [batch, rows, features].
             return Err(ImportError::Input {
                 problem: format!(
-                    "{:?} has rank {}; supported are [batch, features] and [batch, C, H, W]",
+                    "{:?} has rank {}; supported are [batch, features], [batch, rows, features] and [batch, C, H, W]",
                     input.name,
                     dims.len()
                 ),
             });
         }
-        // The first dimension is the batch: symbolic, or a fixed 1 from an exporter that was
-        // not told about dynamic batches.
-        match dims[0] {
-            None | Some(1) => {}
-            Some(n) => {
+        // The first dimension is the batch: symbolic, or fixed by an exporter that was not
+        // told about dynamic batches. A fixed size is imported as a dynamic batch as long as
+        // it only ever travels along the batch axis (the reshape and expand checks refuse
+        // targets that mix it into other axes).
+        if let Some(n) = dims[0] {
+            if n < 1 {
                 return Err(ImportError::Input {
-                    problem: format!(
-                        "{:?} has a fixed batch of {n}; export with a dynamic (or unit) batch dimension",
-                        input.name
-                    ),
+                    problem: format!("{:?} has a batch dimension of {n}", input.name),
                 });
+            }
+            self.fixed_batch = Some(n);
+            if n > 1 {
+                self.notes.push(format!(
+                    "input {:?} has a fixed batch of {n}; imported with a dynamic batch (the size travels only along the batch axis)",
+                    input.name
+                ));
             }
         }
         let mut shape = Vec::new();
@@ -465,6 +536,9 @@ impl Converter {
         );
     }
 
+    /// A node with at least one computed input: one handler per op group (element-wise
+    /// here and in `elementwise.rs`; layers in `layers.rs`; data movement in `layout.rs`;
+    /// reductions and normalisation in `norm.rs`).
     fn dynamic(
         &mut self,
         n: &NodeProto,
@@ -479,168 +553,56 @@ impl Converter {
         if out.is_empty() {
             return Err(ctx.unsupported("the node has no output"));
         }
-        // The first input is the dynamic one for every op below except binary ops and Concat.
-        let x = || -> Result<(String, Vec<usize>), ImportError> {
-            let (name, shape) = ctx.first_dynamic(inputs)?;
-            Ok((name.clone(), shape.clone()))
-        };
-        let konst = |i: usize| -> Result<Option<&ConstTensor>, ImportError> {
-            match inputs.get(i) {
-                None | Some(None) => Ok(None),
-                Some(Some(Val::Const(t))) => Ok(Some(t)),
-                Some(Some(Val::Dyn { .. })) => Err(ctx.not_constant(i)),
-            }
-        };
-        // Extra outputs (BatchNormalization's running stats, Dropout's mask, MaxPool's indices)
-        // must not be read by anyone.
-        for extra in n.output.iter().skip(1) {
-            if !extra.is_empty() && self.uses.get(extra).copied().unwrap_or(0) > 0 {
-                return Err(ctx.unsupported(format!(
-                    "its output {extra:?} is used; only the first output is supported"
-                )));
+        // Extra outputs (BatchNormalization's running stats, Dropout's mask, MaxPool's
+        // indices, LayerNormalization's mean) must not be read by anyone; Split is the one op
+        // whose every output is data.
+        if n.op_type != "Split" {
+            for extra in n.output.iter().skip(1) {
+                if !extra.is_empty() && self.uses.get(extra).copied().unwrap_or(0) > 0 {
+                    return Err(ctx.unsupported(format!(
+                        "its output {extra:?} is used; only the first output is supported"
+                    )));
+                }
             }
         }
-        let unary = |op: Op| -> Result<(Op, Vec<usize>, String), ImportError> {
-            let (xn, shape) = x()?;
-            Ok((op, shape, xn))
-        };
-        let (op, shape, input) = match n.op_type.as_str() {
-            "Relu" => unary(Op::Relu)?,
-            "Sigmoid" => unary(Op::Sigmoid)?,
-            "Tanh" => unary(Op::Tanh)?,
-            "HardSwish" => unary(Op::HardSwish)?,
-            "Identity" => unary(Op::Identity)?,
-            "LeakyRelu" => unary(Op::LeakyRelu {
-                slope: attr_float_checked(n, "alpha")?.unwrap_or(0.01),
-            })?,
-            "HardSigmoid" => unary(Op::HardSigmoid {
-                alpha: attr_float_checked(n, "alpha")?.unwrap_or(0.2),
-                beta: attr_float_checked(n, "beta")?.unwrap_or(0.5),
-            })?,
-            "Gelu" => {
-                let approximation = match attr_string_checked(n, "approximate")?.as_deref() {
-                    None | Some("none") => GeluApproximation::None,
-                    Some("tanh") => GeluApproximation::Tanh,
-                    Some(other) => {
-                        return Err(ctx.unsupported(format!("approximate = {other:?}")));
-                    }
-                };
-                unary(Op::Gelu { approximation })?
-            }
-            "Dropout" => {
-                // Inference: identity. A constant training_mode input must be false.
-                if let Some(t) = konst(2)?
-                    && t.to_i64().iter().any(|&v| v != 0)
-                {
-                    return Err(ctx.unsupported("training_mode is true"));
-                }
-                unary(Op::Identity)?
-            }
-            "Clip" => {
-                // Opset 11+: min and max are optional constant inputs. A missing bound is
-                // ±f32::MAX rather than infinity, which JSON cannot hold; the two differ only
-                // for infinite inputs.
-                let bound = |i: usize, default: f32| -> Result<f32, ImportError> {
-                    Ok(match konst(i)? {
-                        Some(t) if t.len() == 1 => t.to_f32()[0],
-                        Some(_) => return Err(ctx.unsupported("min/max must be scalars")),
-                        None => default,
-                    })
-                };
-                let min = bound(1, attr_float_checked(n, "min")?.unwrap_or(-f32::MAX))?;
-                let max = bound(2, attr_float_checked(n, "max")?.unwrap_or(f32::MAX))?;
-                if min.is_nan() || max.is_nan() || min > max {
-                    return Err(ctx.unsupported(format!("min {min} > max {max}")));
-                }
-                unary(Op::Clip { min, max })?
-            }
+        let simple = match n.op_type.as_str() {
             "Conv" => self.conv(n, name, &ctx, inputs)?,
             "BatchNormalization" => self.batch_norm(n, name, &ctx, inputs)?,
             "Gemm" => self.gemm(n, name, &ctx, inputs)?,
             "MatMul" => self.matmul(name, &ctx, inputs, &out)?,
-            "Add" | "Mul" => {
-                if let Some(done) = self.binary(n, name, &ctx, inputs, &out)? {
-                    done
-                } else {
-                    return Ok(());
-                }
-            }
             "MaxPool" | "AveragePool" => self.pool(n, &ctx, inputs)?,
-            "GlobalAveragePool" => {
-                let (xn, s) = x()?;
-                if s.len() != 3 {
-                    return Err(ctx.unsupported(format!("input {s:?} is not [N, C, H, W]")));
-                }
-                (Op::GlobalAvgPool, vec![s[0], 1, 1], xn)
-            }
-            "ReduceMean" => return self.reduce_mean(n, name, &ctx, inputs, &out),
-            "Flatten" => {
-                let (xn, s) = x()?;
-                let axis = attr_int_checked(n, "axis")?.unwrap_or(1);
-                if axis != 1 && axis != -(s.len() as i64 + 1) + 1 {
-                    return Err(ctx.unsupported(format!(
-                        "axis {axis}: only flattening everything but the batch (axis 1) is supported"
-                    )));
-                }
-                (Op::Flatten, vec![s.iter().product()], xn)
+            "Add" | "Mul" | "Sub" | "Div" | "Max" | "Min" | "Sum" => {
+                return self.binary(n, name, &ctx, inputs, &out);
             }
             "Reshape" => self.reshape(n, &ctx, inputs)?,
+            "Flatten" => self.flatten(n, &ctx, inputs)?,
             "Squeeze" | "Unsqueeze" => self.squeeze(n, &ctx, inputs)?,
-            "Concat" => {
-                let axis = attr_int_checked(n, "axis")?.unwrap_or(1);
-                let mut names = Vec::new();
-                let mut shapes = Vec::new();
-                for (i, v) in inputs.iter().enumerate() {
-                    match v {
-                        Some(Val::Dyn { name, shape }) => {
-                            names.push(name.clone());
-                            shapes.push(shape.clone());
-                        }
-                        _ => {
-                            return Err(ctx.unsupported(format!(
-                                "input {i} is a constant; only computed values can be joined"
-                            )));
-                        }
-                    }
-                }
-                let rank = shapes[0].len() as i64 + 1;
-                if axis != 1 && axis != 1 - rank {
-                    return Err(ctx.unsupported(format!(
-                        "axis {axis}: only joining along channels (axis 1) is supported"
-                    )));
-                }
-                let mut shape = shapes[0].clone();
-                shape[0] = shapes.iter().map(|s| s[0]).sum();
-                let refs: Vec<&str> = names.iter().map(String::as_str).collect();
-                self.push(name, Op::Concat, &refs, &out, shape);
-                return Ok(());
-            }
+            "Transpose" => self.transpose(n, &ctx, inputs)?,
+            "Slice" => self.slice(&ctx, inputs)?,
+            "Gather" => return self.gather(n, name, &ctx, inputs, &out),
+            "Split" => return self.split(n, name, &ctx, inputs),
+            "Concat" => return self.concat(n, name, &ctx, inputs, &out),
+            "Expand" => self.expand(&ctx, inputs)?,
+            "Tile" => self.tile(&ctx, inputs)?,
             "Pad" => self.pad(n, &ctx, inputs)?,
-            "Softmax" => {
-                let (xn, s) = x()?;
-                let rank = s.len() as i64 + 1;
-                let default = if self.opset >= 13 { -1 } else { 1 };
-                let axis = attr_int_checked(n, "axis")?.unwrap_or(default);
-                let axis = if axis < 0 { axis + rank } else { axis };
-                // Before opset 13, Softmax flattens from `axis` on: the same as ours only when
-                // axis 1 is the last axis or the rest is 1×1.
-                let ok =
-                    axis == 1 && (rank == 2 || self.opset >= 13 || s[1..].iter().all(|&d| d == 1));
-                if !ok {
-                    return Err(ctx.unsupported(format!(
-                        "softmax over axis {axis} of a rank-{rank} value; supported: over classes [N, K] or channels [N, C, H, W]"
-                    )));
+            "GlobalAveragePool" => self.global_pool(&ctx, inputs)?,
+            "ReduceMean" | "ReduceMax" | "ReduceSum" | "ReduceL2" => {
+                return self.reduce(n, name, &ctx, inputs, &out);
+            }
+            "LayerNormalization" => self.layer_norm(n, name, &ctx, inputs)?,
+            "Softmax" => self.softmax(n, &ctx, inputs)?,
+            _ => match self.unary(n, &ctx, inputs)? {
+                Some(done) => done,
+                None => {
+                    return Err(ImportError::UnsupportedOp {
+                        node: name.to_string(),
+                        op: n.op_type.clone(),
+                        supported: SUPPORTED.join(", "),
+                    });
                 }
-                (Op::Softmax, s, xn)
-            }
-            other => {
-                return Err(ImportError::UnsupportedOp {
-                    node: name.to_string(),
-                    op: other.to_string(),
-                    supported: SUPPORTED.join(", "),
-                });
-            }
+            },
         };
+        let (op, shape, input) = simple;
         self.push(name, op, &[&input], &out, shape);
         Ok(())
     }

@@ -1,0 +1,341 @@
+//! Rewrites of the converted graph that exporters make necessary: a layer norm written out
+//! as arithmetic (older opsets) becomes one layer-norm node, and channels-last blocks
+//! bracketed by transposes (ConvNeXt's `permute → LayerNorm → Linear → GELU → Linear →
+//! permute`) are computed channels-first, so no data is moved at all.
+//!
+//! Both run after the node walk, on convoy's own graph; the bundle's check samples then
+//! confirm the rewritten graph against the reference outputs like any other.
+
+use std::collections::HashMap;
+
+use crate::graph::build::NamedTensor;
+use crate::graph::{Node, Op, ReduceKind, WeightLayout};
+
+/// Who reads each value.
+struct Links {
+    readers: HashMap<String, Vec<usize>>,
+}
+
+impl Links {
+    fn new(nodes: &[Node], output: &str) -> Links {
+        let mut readers: HashMap<String, Vec<usize>> = HashMap::new();
+        for (i, n) in nodes.iter().enumerate() {
+            for v in &n.inputs {
+                readers.entry(v.clone()).or_default().push(i);
+            }
+        }
+        // The graph output has a reader outside the graph.
+        readers
+            .entry(output.to_string())
+            .or_default()
+            .push(usize::MAX);
+        Links { readers }
+    }
+
+    /// The one node that reads `value`, if exactly one does.
+    fn only_reader(&self, value: &str) -> Option<usize> {
+        match self.readers.get(value).map(Vec::as_slice) {
+            Some(&[r]) if r != usize::MAX => Some(r),
+            _ => None,
+        }
+    }
+}
+
+fn tensor_mut<'t>(tensors: &'t mut [NamedTensor], name: &str) -> Option<&'t mut NamedTensor> {
+    tensors.iter_mut().rev().find(|t| t.0 == name)
+}
+
+fn tensor<'t>(tensors: &'t [NamedTensor], name: &str) -> Option<&'t NamedTensor> {
+    tensors.iter().rev().find(|t| t.0 == name)
+}
+
+/// `ReduceMean → Sub → Pow 2 → ReduceMean → Add ε → Sqrt → Div` (then optionally `Mul γ`,
+/// `Add β`) over a contiguous run of axes becomes one layer norm. Returns one note per
+/// rewrite.
+pub(super) fn fuse_layer_norms(
+    nodes: &mut Vec<Node>,
+    tensors: &mut Vec<NamedTensor>,
+    output: &str,
+) -> Vec<String> {
+    let mut notes = Vec::new();
+    let mut i = 0;
+    while i < nodes.len() {
+        if let Some((gone, ln_at, ln)) = match_layer_norm(nodes, tensors, output, i) {
+            notes.push(format!(
+                "{} … {}: a layer norm written out as arithmetic, fused into one step",
+                nodes[i].name, nodes[ln_at].name
+            ));
+            nodes[ln_at].op = ln;
+            nodes[ln_at].inputs = vec![nodes[i].inputs[0].clone()];
+            let mut gone = gone;
+            gone.sort_unstable();
+            for g in gone.into_iter().rev() {
+                nodes.remove(g);
+            }
+            continue;
+        }
+        i += 1;
+    }
+    notes
+}
+
+/// Matches the written-out layer norm whose first mean is node `i`: returns the nodes to
+/// delete, the node that becomes the layer norm, and its op.
+fn match_layer_norm(
+    nodes: &[Node],
+    tensors: &mut Vec<NamedTensor>,
+    output: &str,
+    i: usize,
+) -> Option<(Vec<usize>, usize, Op)> {
+    let links = Links::new(nodes, output);
+    let Op::Reduce {
+        kind: ReduceKind::Mean,
+        axes,
+        keep_dims: true,
+    } = &nodes[i].op
+    else {
+        return None;
+    };
+    let x = &nodes[i].inputs[0];
+    let contiguous = axes.windows(2).all(|w| w[1] == w[0] + 1);
+    if !contiguous {
+        return None;
+    }
+    let sub = links.only_reader(&nodes[i].output)?;
+    let is = |at: usize, f: &dyn Fn(&Op) -> bool| f(&nodes[at].op);
+    if !is(sub, &|op| matches!(op, Op::Sub { constant: None, .. }))
+        || nodes[sub].inputs != [x.clone(), nodes[i].output.clone()]
+    {
+        return None;
+    }
+    let d = &nodes[sub].output;
+    let d_readers = links.readers.get(d)?;
+    let [r1, r2] = d_readers.as_slice() else {
+        return None;
+    };
+    let (pow, div) = if matches!(nodes[*r1].op, Op::Pow { exponent: 2.0 }) {
+        (*r1, *r2)
+    } else {
+        (*r2, *r1)
+    };
+    let squared = matches!(nodes[pow].op, Op::Pow { exponent: 2.0 })
+        || (matches!(nodes[pow].op, Op::Mul { constant: None })
+            && nodes[pow].inputs == [d.clone(), d.clone()]);
+    if !squared || !matches!(nodes[div].op, Op::Div { constant: None, .. }) {
+        return None;
+    }
+    let var = links.only_reader(&nodes[pow].output)?;
+    if nodes[var].op != nodes[i].op {
+        return None;
+    }
+    let add = links.only_reader(&nodes[var].output)?;
+    let Op::Add {
+        constant: Some(eps),
+    } = &nodes[add].op
+    else {
+        return None;
+    };
+    let eps = tensor(tensors, eps).filter(|t| t.2.len() == 1)?.2[0];
+    let sqrt = links.only_reader(&nodes[add].output)?;
+    if nodes[sqrt].op != Op::Sqrt
+        || links.only_reader(&nodes[sqrt].output) != Some(div)
+        || nodes[div].inputs != [d.clone(), nodes[sqrt].output.clone()]
+    {
+        return None;
+    }
+    let block_axes = axes.clone();
+    let mut gone = vec![i, sub, pow, var, add, sqrt];
+    // Optional γ and β: constants with ones outside the normalised axes.
+    let (mut last, mut scale, mut bias) = (div, None, None);
+    if let Some(m) = links.only_reader(&nodes[last].output)
+        && let Op::Mul { constant: Some(c) } = &nodes[m].op
+        && block_only(tensors, c, &block_axes)
+    {
+        gone.push(last);
+        (last, scale) = (m, Some(c.clone()));
+        if let Some(a) = links.only_reader(&nodes[last].output)
+            && let Op::Add { constant: Some(c) } = &nodes[a].op
+            && block_only(tensors, c, &block_axes)
+        {
+            gone.push(last);
+            (last, bias) = (a, Some(c.clone()));
+        }
+    }
+    let block: Vec<usize> = {
+        let sample = tensor(tensors, scale.as_deref().unwrap_or(""))
+            .map(|t| t.1.clone())
+            .unwrap_or_default();
+        block_axes
+            .iter()
+            .map(|&a| sample.get(a).copied().unwrap_or(0))
+            .collect()
+    };
+    // Without γ there is nothing to hold the block's shape; such graphs keep their steps.
+    let scale = scale?;
+    reshape_tensor(tensors, &scale, &block);
+    if let Some(b) = &bias {
+        reshape_tensor(tensors, b, &block);
+    }
+    let op = Op::LayerNorm {
+        scale,
+        bias,
+        axis: block_axes[0],
+        count: block_axes.len(),
+        epsilon: eps,
+    };
+    Some((gone, last, op))
+}
+
+/// Whether constant `name` has size 1 on every axis outside `axes` (a per-block constant).
+fn block_only(tensors: &[NamedTensor], name: &str, axes: &[usize]) -> bool {
+    tensor(tensors, name).is_some_and(|t| {
+        t.1.iter()
+            .enumerate()
+            .all(|(d, &n)| axes.contains(&d) || n == 1)
+    })
+}
+
+fn reshape_tensor(tensors: &mut [NamedTensor], name: &str, shape: &[usize]) {
+    if let Some(t) = tensor_mut(tensors, name) {
+        t.1 = shape.to_vec();
+    }
+}
+
+/// Channels-last blocks of `[C, H, W]` values: `Transpose [1, 2, 0]`, a chain of ops that
+/// each work on the last axis position by position, `Transpose [2, 0, 1]`. The chain is
+/// rewritten channels-first (layer norm over axis 0, dense layers as 1×1 convolutions,
+/// constants as `[C, 1, 1]`) and both transposes become aliases.
+pub(super) fn channels_first_blocks(
+    nodes: &mut [Node],
+    tensors: &mut [NamedTensor],
+    output: &str,
+) -> Vec<String> {
+    let mut notes = Vec::new();
+    for i in 0..nodes.len() {
+        if !matches!(&nodes[i].op, Op::Transpose { perm } if perm == &[1, 2, 0]) {
+            continue;
+        }
+        let links = Links::new(nodes, output);
+        let mut chain = Vec::new();
+        let mut cur = nodes[i].output.clone();
+        let end = loop {
+            let Some(j) = links.only_reader(&cur) else {
+                break None;
+            };
+            match &nodes[j].op {
+                Op::Transpose { perm } if perm == &[2, 0, 1] => break Some(j),
+                op if nodes[j].inputs.len() == 1 && position_wise(op, tensors) => {
+                    chain.push(j);
+                    cur = nodes[j].output.clone();
+                }
+                _ => break None,
+            }
+        };
+        let Some(end) = end else {
+            continue;
+        };
+        for &j in &chain {
+            let op = std::mem::replace(&mut nodes[j].op, Op::Identity);
+            nodes[j].op = channels_first(op, tensors);
+        }
+        nodes[i].op = Op::Identity;
+        nodes[end].op = Op::Identity;
+        notes.push(format!(
+            "{} … {}: a channels-last block computed channels-first ({} steps, no transposes)",
+            nodes[i].name,
+            nodes[end].name,
+            chain.len()
+        ));
+    }
+    notes
+}
+
+/// Ops of one value that treat every position of `[H, W, C]` alike over its last axis.
+fn position_wise(op: &Op, tensors: &[NamedTensor]) -> bool {
+    match op {
+        Op::LayerNorm {
+            axis: 2, count: 1, ..
+        }
+        | Op::Dense { .. } => true,
+        Op::Transpose { .. }
+        | Op::Slice { .. }
+        | Op::Gather { .. }
+        | Op::Expand { .. }
+        | Op::Tile { .. }
+        | Op::Reduce { .. }
+        | Op::LayerNorm { .. }
+        | Op::Reshape { .. }
+        | Op::Flatten
+        | Op::Concat { .. }
+        | Op::Softmax
+        | Op::Conv2d { .. }
+        | Op::BatchNorm { .. }
+        | Op::MaxPool { .. }
+        | Op::AvgPool { .. }
+        | Op::GlobalAvgPool
+        | Op::Pad { .. } => false,
+        op => match op.binary() {
+            // A constant of one value per channel (or one value) on the last axis.
+            Some((_, Some(c), _)) => tensor(tensors, c)
+                .is_some_and(|t| t.1.len() == 3 && t.1[0] == 1 && t.1[1] == 1 || t.2.len() == 1),
+            Some((_, None, _)) => false,
+            None => true,
+        },
+    }
+}
+
+/// The channels-first twin of a position-wise op of the channels-last block.
+fn channels_first(op: Op, tensors: &mut [NamedTensor]) -> Op {
+    match op {
+        Op::LayerNorm {
+            scale,
+            bias,
+            epsilon,
+            ..
+        } => Op::LayerNorm {
+            scale,
+            bias,
+            axis: 0,
+            count: 1,
+            epsilon,
+        },
+        Op::Dense {
+            weight,
+            bias,
+            weight_layout,
+        } => {
+            if let Some(t) = tensor_mut(tensors, &weight) {
+                let (rows, cols) = (t.1[0], t.1[1]);
+                if weight_layout == WeightLayout::InOut {
+                    let mut data = vec![0.0; t.2.len()];
+                    for r in 0..rows {
+                        for c in 0..cols {
+                            data[c * rows + r] = t.2[r * cols + c];
+                        }
+                    }
+                    t.2 = data;
+                    t.1 = vec![cols, rows, 1, 1];
+                } else {
+                    t.1 = vec![rows, cols, 1, 1];
+                }
+            }
+            Op::Conv2d {
+                weight,
+                bias,
+                stride: [1, 1],
+                dilation: [1, 1],
+                padding: [0; 4],
+                groups: 1,
+            }
+        }
+        op => {
+            if let Some((_, Some(c), _)) = op.binary()
+                && let Some(t) = tensor_mut(tensors, c)
+                && t.1.len() == 3
+            {
+                t.1 = vec![t.1[2], 1, 1];
+            }
+            op
+        }
+    }
+}

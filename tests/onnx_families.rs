@@ -1,0 +1,173 @@
+//! Standard classifier families, as torchvision defines them, imported and run against
+//! PyTorch's own outputs.
+//!
+//! `tests/onnx/families/` holds reduced members of each family (the families' own
+//! constructors with narrower widths and 64–128 px inputs: the operator patterns stay, the
+//! weights shrink), exported by both of PyTorch's ONNX exporters, with inputs and PyTorch's
+//! outputs (`make_families.py` beside them; versions in its README and manifest). Tolerance:
+//! `1e-4 · max(1, max |reference|)` and the same top-1 wherever the reference's two largest
+//! logits differ by more than that (the rule of `tests/onnx/README.md`).
+
+use std::path::{Path, PathBuf};
+
+use convoy::bundle::Bundle;
+use convoy::engine::{Engine, EngineConfig, RunOptions, tolerance_check};
+use convoy::graph::build::SplitMix64;
+use convoy::import::{ImportOptions, import_onnx};
+use convoy::npy::read_npy_file;
+use serde_json::Value;
+
+fn dir() -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/onnx/families")
+}
+
+fn manifest() -> Vec<Value> {
+    let text = std::fs::read(dir().join("manifest.json")).expect("families manifest");
+    let m: Value = serde_json::from_slice(&text).expect("manifest is JSON");
+    let files = m["files"].as_array().expect("manifest lists files").clone();
+    assert!(files.len() >= 20, "the zoo has {} exports", files.len());
+    files
+}
+
+/// Index of the largest value, or `None` when the two largest are within `tol`.
+fn clear_top1(xs: &[f32], tol: f32) -> Option<usize> {
+    let mut idx: Vec<usize> = (0..xs.len()).collect();
+    idx.sort_by(|&a, &b| xs[b].total_cmp(&xs[a]));
+    (xs.len() < 2 || xs[idx[0]] - xs[idx[1]] > tol).then_some(idx[0])
+}
+
+fn import(file: &str, check: Option<(&Path, &Path)>, out: &Path) -> Result<Engine, String> {
+    let mut options = ImportOptions::default();
+    if let Some((x, y)) = check {
+        options.check = Some((read_npy_file(x).unwrap(), read_npy_file(y).unwrap()));
+        options.check_source = "pytorch".into();
+    }
+    import_onnx(&dir().join(file), out, &options, &mut |_| {})
+        .map_err(|e| format!("{file}: {e}"))?;
+    let bundle = Bundle::open(out).unwrap();
+    Ok(Engine::new(&bundle, &EngineConfig::default()).unwrap())
+}
+
+/// Exports refused for now, each with an error naming the node; supporting one means taking
+/// it off this list (the test fails when it imports).
+const KNOWN_GAPS: &[(&str, &str)] = &[
+    (
+        "convnext.dynamo.onnx",
+        "the dynamo exporter writes a permute of the pooled value as as_strided: a reshape of \
+         the whole batch to one axis and a Gather with indices built from the batch size",
+    ),
+    (
+        "alexnet.dynamo.onnx",
+        "the adaptive pool from 1×1 to 6×6 is written as Transpose (batch moved) → GatherND",
+    ),
+];
+
+#[test]
+fn every_family_imports_and_matches_pytorch() {
+    let tmp = tempfile::tempdir().unwrap();
+    let mut table = Vec::new();
+    let mut failed = Vec::new();
+    for e in manifest() {
+        let Some(file) = e["file"].as_str() else {
+            continue;
+        };
+        let (xp, yp) = (
+            dir().join(e["input"].as_str().unwrap()),
+            dir().join(e["output"].as_str().unwrap()),
+        );
+        let out = tmp.path().join(format!("{file}.cvb"));
+        let result = import(file, Some((&xp, &yp)), &out);
+        if let Some(why) = KNOWN_GAPS.iter().find(|g| g.0 == file).map(|g| g.1) {
+            let err = result
+                .err()
+                .unwrap_or_else(|| panic!("{file} imports now ({why})"));
+            assert!(
+                err.contains("node \""),
+                "{file}: the refusal names the node: {err}"
+            );
+            continue;
+        }
+        let engine = match result {
+            Ok(engine) => engine,
+            Err(e) => {
+                failed.push(e);
+                continue;
+            }
+        };
+        let (x, y) = (read_npy_file(&xp).unwrap(), read_npy_file(&yp).unwrap());
+        let batch = x.shape[0];
+        let got = engine.run(&x.data, batch, RunOptions::default()).unwrap();
+        let (err, bound) = tolerance_check(&got, &y.data);
+        assert!(err <= bound, "{file}: error {err:e} > {bound:e}");
+        let per = got.len() / batch;
+        for s in 0..batch {
+            let want = &y.data[s * per..][..per];
+            if let Some(top) = clear_top1(want, bound) {
+                assert_eq!(
+                    clear_top1(&got[s * per..][..per], 0.0),
+                    Some(top),
+                    "{file}: top-1 of sample {s}"
+                );
+            }
+        }
+        table.push(format!("{file:<48} {err:.1e} (bound {bound:.1e})"));
+    }
+    println!("{}", table.join("\n"));
+    assert!(
+        failed.is_empty(),
+        "{} exports failed:\n{}",
+        failed.len(),
+        failed.join("\n")
+    );
+}
+
+/// A dynamo export made with an example batch of 8 and no dynamic shapes (the exporter's
+/// default) imports as batch-dynamic and gives the dynamic export's outputs at every batch
+/// size from 1 to 64.
+#[test]
+fn a_fixed_batch_export_serves_any_batch() {
+    let files = manifest();
+    let fixed = files
+        .iter()
+        .find(|e| e["fixed_batch"].as_u64() == Some(8) && e["file"].is_string())
+        .expect("the zoo has a fixed-batch export");
+    let net = fixed["net"].as_str().unwrap();
+    let dynamic = files
+        .iter()
+        .find(|e| {
+            e["net"].as_str() == Some(net)
+                && e["exporter"] == fixed["exporter"]
+                && e["dynamic_batch"].as_bool() == Some(true)
+                && e["file"].is_string()
+        })
+        .expect("the same net exported with a dynamic batch");
+    let tmp = tempfile::tempdir().unwrap();
+    let a = import(
+        fixed["file"].as_str().unwrap(),
+        None,
+        &tmp.path().join("fixed.cvb"),
+    )
+    .unwrap();
+    let b = import(
+        dynamic["file"].as_str().unwrap(),
+        None,
+        &tmp.path().join("dynamic.cvb"),
+    )
+    .unwrap();
+    let per = a.plan().input_len();
+    let mut rng = SplitMix64::new(64);
+    let x = rng.vec(64 * per, -2.0, 2.0);
+    for batch in [1, 2, 3, 8, 13, 64] {
+        let ya = a
+            .run(&x[..batch * per], batch, RunOptions::default())
+            .unwrap();
+        let yb = b
+            .run(&x[..batch * per], batch, RunOptions::default())
+            .unwrap();
+        let (err, bound) = tolerance_check(&ya, &yb);
+        assert!(
+            err <= bound,
+            "batch {batch}: fixed and dynamic exports differ by {err:e}"
+        );
+    }
+}
