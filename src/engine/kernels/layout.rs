@@ -171,11 +171,6 @@ impl StridedCopy {
             && self.shape[0] == input_len
     }
 
-    /// Elements written per sample.
-    pub fn len(&self) -> usize {
-        self.shape.iter().product()
-    }
-
     /// One sample.
     pub fn run(&self, input: &[f32], output: &mut [f32]) {
         let inner_stride = self.strides[self.strides.len() - 1];

@@ -54,7 +54,7 @@ fn tensor<'t>(tensors: &'t [NamedTensor], name: &str) -> Option<&'t NamedTensor>
 /// rewrite.
 pub(super) fn fuse_layer_norms(
     nodes: &mut Vec<Node>,
-    tensors: &mut Vec<NamedTensor>,
+    tensors: &mut [NamedTensor],
     output: &str,
 ) -> Vec<String> {
     let mut notes = Vec::new();
@@ -83,7 +83,7 @@ pub(super) fn fuse_layer_norms(
 /// delete, the node that becomes the layer norm, and its op.
 fn match_layer_norm(
     nodes: &[Node],
-    tensors: &mut Vec<NamedTensor>,
+    tensors: &mut [NamedTensor],
     output: &str,
     i: usize,
 ) -> Option<(Vec<usize>, usize, Op)> {
