@@ -49,7 +49,7 @@ fn tensor<'t>(tensors: &'t [NamedTensor], name: &str) -> Option<&'t NamedTensor>
     tensors.iter().rev().find(|t| t.0 == name)
 }
 
-/// `ReduceMean → Sub → Pow 2 → ReduceMean → Add ε → Sqrt → Div` (then optionally `Mul γ`,
+/// `ReduceMean → Sub → Pow 2 → ReduceMean → Add ε → Sqrt → Div → Mul γ` (then optionally
 /// `Add β`) over a contiguous run of axes becomes one layer norm. Returns one note per
 /// rewrite.
 pub(super) fn fuse_layer_norms(
@@ -79,6 +79,15 @@ pub(super) fn fuse_layer_norms(
     notes
 }
 
+/// The normalising core of a written-out layer norm, by node index.
+struct Core {
+    axes: Vec<usize>,
+    /// `ReduceMean`, `Sub`, `Pow 2`, `ReduceMean`, `Add ε`, `Sqrt`.
+    steps: [usize; 6],
+    div: usize,
+    epsilon: f32,
+}
+
 /// Matches the written-out layer norm whose first mean is node `i`: returns the nodes to
 /// delete, the node that becomes the layer norm, and its op.
 fn match_layer_norm(
@@ -88,6 +97,49 @@ fn match_layer_norm(
     i: usize,
 ) -> Option<(Vec<usize>, usize, Op)> {
     let links = Links::new(nodes, output);
+    let core = match_core(nodes, tensors, &links, i)?;
+    let mut gone = core.steps.to_vec();
+    // γ and β: constants with ones outside the normalised axes.
+    let (mut last, mut bias) = (core.div, None);
+    let m = links.only_reader(&nodes[last].output)?;
+    let Op::Mul { constant: Some(c) } = &nodes[m].op else {
+        // Without γ there is nothing to hold the block's shape; such graphs keep their steps.
+        return None;
+    };
+    if !block_only(tensors, c, &core.axes) {
+        return None;
+    }
+    let scale = c.clone();
+    gone.push(last);
+    last = m;
+    if let Some(a) = links.only_reader(&nodes[last].output)
+        && let Op::Add { constant: Some(c) } = &nodes[a].op
+        && block_only(tensors, c, &core.axes)
+    {
+        gone.push(last);
+        (last, bias) = (a, Some(c.clone()));
+    }
+    let sample = tensor(tensors, &scale)
+        .map(|t| t.1.clone())
+        .unwrap_or_default();
+    let block: Vec<usize> = core.axes.iter().map(|&a| sample[a]).collect();
+    reshape_tensor(tensors, &scale, &block);
+    if let Some(b) = &bias {
+        reshape_tensor(tensors, b, &block);
+    }
+    let op = Op::LayerNorm {
+        scale,
+        bias,
+        axis: core.axes[0],
+        count: core.axes.len(),
+        epsilon: core.epsilon,
+    };
+    Some((gone, last, op))
+}
+
+/// `ReduceMean(x) → Sub(x, mean) → Pow 2 → ReduceMean → Add ε → Sqrt → Div(diff, sqrt)` over a
+/// contiguous run of axes, every intermediate read only inside the pattern.
+fn match_core(nodes: &[Node], tensors: &[NamedTensor], links: &Links, i: usize) -> Option<Core> {
     let Op::Reduce {
         kind: ReduceKind::Mean,
         axes,
@@ -96,32 +148,27 @@ fn match_layer_norm(
     else {
         return None;
     };
-    let x = &nodes[i].inputs[0];
-    let contiguous = axes.windows(2).all(|w| w[1] == w[0] + 1);
-    if !contiguous {
+    if !axes.windows(2).all(|w| w[1] == w[0] + 1) {
         return None;
     }
+    let x = &nodes[i].inputs[0];
     let sub = links.only_reader(&nodes[i].output)?;
-    let is = |at: usize, f: &dyn Fn(&Op) -> bool| f(&nodes[at].op);
-    if !is(sub, &|op| matches!(op, Op::Sub { constant: None, .. }))
+    if !matches!(nodes[sub].op, Op::Sub { constant: None, .. })
         || nodes[sub].inputs != [x.clone(), nodes[i].output.clone()]
     {
         return None;
     }
     let d = &nodes[sub].output;
-    let d_readers = links.readers.get(d)?;
-    let [r1, r2] = d_readers.as_slice() else {
+    let [r1, r2] = links.readers.get(d)?.as_slice() else {
         return None;
     };
-    let (pow, div) = if matches!(nodes[*r1].op, Op::Pow { exponent: 2.0 }) {
+    let is_square = |at: usize| matches!(nodes[at].op, Op::Pow { exponent: 2.0 });
+    let (pow, div) = if is_square(*r1) {
         (*r1, *r2)
     } else {
         (*r2, *r1)
     };
-    let squared = matches!(nodes[pow].op, Op::Pow { exponent: 2.0 })
-        || (matches!(nodes[pow].op, Op::Mul { constant: None })
-            && nodes[pow].inputs == [d.clone(), d.clone()]);
-    if !squared || !matches!(nodes[div].op, Op::Div { constant: None, .. }) {
+    if !is_square(pow) || !matches!(nodes[div].op, Op::Div { constant: None, .. }) {
         return None;
     }
     let var = links.only_reader(&nodes[pow].output)?;
@@ -135,7 +182,7 @@ fn match_layer_norm(
     else {
         return None;
     };
-    let eps = tensor(tensors, eps).filter(|t| t.2.len() == 1)?.2[0];
+    let epsilon = tensor(tensors, eps).filter(|t| t.2.len() == 1)?.2[0];
     let sqrt = links.only_reader(&nodes[add].output)?;
     if nodes[sqrt].op != Op::Sqrt
         || links.only_reader(&nodes[sqrt].output) != Some(div)
@@ -143,47 +190,12 @@ fn match_layer_norm(
     {
         return None;
     }
-    let block_axes = axes.clone();
-    let mut gone = vec![i, sub, pow, var, add, sqrt];
-    // Optional γ and β: constants with ones outside the normalised axes.
-    let (mut last, mut scale, mut bias) = (div, None, None);
-    if let Some(m) = links.only_reader(&nodes[last].output)
-        && let Op::Mul { constant: Some(c) } = &nodes[m].op
-        && block_only(tensors, c, &block_axes)
-    {
-        gone.push(last);
-        (last, scale) = (m, Some(c.clone()));
-        if let Some(a) = links.only_reader(&nodes[last].output)
-            && let Op::Add { constant: Some(c) } = &nodes[a].op
-            && block_only(tensors, c, &block_axes)
-        {
-            gone.push(last);
-            (last, bias) = (a, Some(c.clone()));
-        }
-    }
-    let block: Vec<usize> = {
-        let sample = tensor(tensors, scale.as_deref().unwrap_or(""))
-            .map(|t| t.1.clone())
-            .unwrap_or_default();
-        block_axes
-            .iter()
-            .map(|&a| sample.get(a).copied().unwrap_or(0))
-            .collect()
-    };
-    // Without γ there is nothing to hold the block's shape; such graphs keep their steps.
-    let scale = scale?;
-    reshape_tensor(tensors, &scale, &block);
-    if let Some(b) = &bias {
-        reshape_tensor(tensors, b, &block);
-    }
-    let op = Op::LayerNorm {
-        scale,
-        bias,
-        axis: block_axes[0],
-        count: block_axes.len(),
-        epsilon: eps,
-    };
-    Some((gone, last, op))
+    Some(Core {
+        axes: axes.clone(),
+        steps: [i, sub, pow, var, add, sqrt],
+        div,
+        epsilon,
+    })
 }
 
 /// Whether constant `name` has size 1 on every axis outside `axes` (a per-block constant).
