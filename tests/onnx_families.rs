@@ -56,10 +56,6 @@ const KNOWN_GAPS: &[(&str, &str)] = &[
         "the dynamo exporter writes a permute of the pooled value as as_strided: a reshape of \
          the whole batch to one axis and a Gather with indices built from the batch size",
     ),
-    (
-        "alexnet.dynamo.onnx",
-        "the adaptive pool from 1×1 to 6×6 is written as Transpose (batch moved) → GatherND",
-    ),
 ];
 
 #[test]
@@ -170,4 +166,39 @@ fn a_fixed_batch_export_serves_any_batch() {
             "batch {batch}: fixed and dynamic exports differ by {err:e}"
         );
     }
+}
+
+/// ConvNeXt's blocks bracket per-channel work (layer norm, the two Linear layers, GELU —
+/// written out as `x · ½(1 + erf(x/√2))` before opset 20) between `permute(0, 2, 3, 1)` and
+/// `permute(0, 3, 1, 2)` (Liu et al. 2022, torchvision's `CNBlock`); imported, they run
+/// channels-first with no transpose left to move data.
+#[test]
+fn convnext_runs_no_transposes() {
+    let tmp = tempfile::tempdir().unwrap();
+    let mut checked = 0;
+    for entry in manifest() {
+        let Some(file) = entry["file"].as_str() else {
+            continue;
+        };
+        if entry["net"].as_str() != Some("convnext") || KNOWN_GAPS.iter().any(|g| g.0 == file) {
+            continue;
+        }
+        let out = tmp.path().join("convnext.cvb");
+        import(file, None, &out).unwrap();
+        let bundle = Bundle::open(&out).unwrap();
+        let transposes: Vec<&str> = bundle
+            .manifest()
+            .graph
+            .nodes
+            .iter()
+            .filter(|n| matches!(n.op, convoy::graph::Op::Transpose { .. }))
+            .map(|n| n.name.as_str())
+            .collect();
+        assert!(
+            transposes.is_empty(),
+            "{file}: transposes left: {transposes:?}"
+        );
+        checked += 1;
+    }
+    assert!(checked >= 2, "only {checked} ConvNeXt exports checked");
 }

@@ -55,7 +55,7 @@ INT_MIN = int(np.iinfo(np.int64).min)
 EXACT_OPS = {
     "Transpose", "Reshape", "Flatten", "Squeeze", "Unsqueeze", "Split", "Slice",
     "Gather", "Concat", "Expand", "Tile", "Abs", "Neg", "Min", "Max", "Clip",
-    "ReduceMax",
+    "ReduceMax", "GatherND",
 }
 
 
@@ -541,6 +541,32 @@ def build():
          expect=R, note="[N,5] to [3,1,5] -> [3,N,5]: the batch moves to axis 1")
     case("refuse_matmul_contracts_batch", "MatMul", 13, [5], [node("MatMul", ["w", "x"], ["y"])], {"w": w(4, 2)},
          expect=R, batch=2, note="[4,N] @ [N,5]: constant on the left contracts over the batch (valid only for N = 2)")
+
+    # ------------------------------------------------ batch moved for a moment (appended last
+    # so that the seeds of the cases above stay as they were)
+    pos = np.array([[[[[0, 0]], [[0, 2]], [[1, 4]]]], [[[[3, 1]], [[2, 2]], [[-1, -1]]]]], np.int64)  # (2,1,3,1,2)
+    case("gathernd_moved_positions", "GatherND", 13, X4,
+         [node("Transpose", ["x"], ["t"], perm=[2, 3, 0, 1]), node("GatherND", ["t", "i"], ["g"]),
+          node("Transpose", ["g"], ["y"], perm=[4, 5, 0, 1, 2, 3])], {"i": pos},
+         note="positions first, GatherND of (H, W) pairs, batch back in front (an enlarging adaptive pool)")
+    case("gathernd_moved_channels", "GatherND", 13, X4,
+         [node("Transpose", ["x"], ["t"], perm=[1, 0, 3, 2]), node("GatherND", ["t", "i"], ["g"]),
+          node("Transpose", ["g"], ["y"], perm=[2, 0, 1, 3, 4])], {"i": i64(2, 0, -1, 0).reshape(2, 2, 1)},
+         note="channels first, GatherND of channels [[2, 0], [-1, 0]], back with W and H swapped")
+    case("transpose_batch_out_and_back", "Transpose", 13, X4,
+         [node("Transpose", ["x"], ["t"], perm=[2, 0, 3, 1]), node("Transpose", ["t"], ["y"], perm=[1, 3, 0, 2])],
+         note="two transposes that move the batch and bring it back: one per-sample transpose [0, 2, 1]")
+    case("relu_on_moved_batch", "Relu", 13, X4,
+         [node("Transpose", ["x"], ["t"], perm=[1, 0, 2, 3]), node("Relu", ["t"], ["r"]),
+          node("Transpose", ["r"], ["y"], perm=[1, 0, 3, 2])],
+         note="a Relu between a transpose that moves the batch and one that brings it back")
+    case("refuse_moved_batch_add", "Add", 13, X4,
+         [node("Transpose", ["x"], ["t"], perm=[1, 0, 2, 3]), node("Add", ["t", "c"], ["r"]),
+          node("Transpose", ["r"], ["y"], perm=[1, 0, 2, 3])], {"c": f32(1, 2, 3).reshape(3, 1, 1)},
+         expect=R, batch=3,
+         note="an Add of a [3,1,1] constant to [C,N,H,W] adds along the batch axis (valid only for N = 3)")
+    case("refuse_gathernd_batch", "GatherND", 13, X4, [node("GatherND", ["x", "i"], ["y"])], {"i": i64(0, 1).reshape(2, 1)},
+         expect=R, note="GatherND on the batch axis picks batch rows")
 
 
 def dumps(out):

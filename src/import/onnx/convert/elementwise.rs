@@ -186,6 +186,9 @@ impl Converter {
             (Val::Const(_), Val::Const(_)) => {
                 return Err(ctx.unsupported("a chain of constants cannot be folded here"));
             }
+            (Val::Moved { .. }, _) | (_, Val::Moved { .. }) => {
+                return Err(ctx.unsupported("an operand has its batch axis moved"));
+            }
         };
         let refs: Vec<&str> = inputs.iter().map(String::as_str).collect();
         self.push(name, op, &refs, out, shape.clone());

@@ -209,36 +209,6 @@ impl Converter {
         Ok((Op::Flatten, vec![s.iter().product()], xn.clone()))
     }
 
-    pub(super) fn transpose(
-        &mut self,
-        n: &NodeProto,
-        ctx: &Ctx<'_>,
-        inputs: &[Option<Val>],
-    ) -> Result<Simple, ImportError> {
-        let (xn, s) = ctx.first_dynamic(inputs)?;
-        let rank = s.len() + 1;
-        let perm =
-            attr_ints_checked(n, "perm")?.unwrap_or_else(|| (0..rank as i64).rev().collect());
-        let mut seen = vec![false; rank];
-        let valid = perm.len() == rank
-            && perm.iter().all(|&p| {
-                (0..rank as i64).contains(&p) && !std::mem::replace(&mut seen[p as usize], true)
-            });
-        if !valid {
-            return Err(
-                ctx.unsupported(format!("perm {perm:?} is not a permutation of {rank} axes"))
-            );
-        }
-        if perm[0] != 0 {
-            return Err(ctx.unsupported(format!(
-                "perm {perm:?} moves the batch axis; only axes after the batch may be reordered"
-            )));
-        }
-        let perm: Vec<usize> = perm[1..].iter().map(|&p| p as usize - 1).collect();
-        let shape = perm.iter().map(|&p| s[p]).collect();
-        Ok((Op::Transpose { perm }, shape, xn.clone()))
-    }
-
     /// Slice with constant starts, ends, axes and steps (ONNX's clamping rules). The batch
     /// axis may only be taken whole.
     pub(super) fn slice(

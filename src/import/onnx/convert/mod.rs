@@ -16,6 +16,7 @@ use std::collections::{BTreeMap, HashMap, HashSet};
 mod elementwise;
 mod layers;
 mod layout;
+mod moved;
 mod norm;
 mod patterns;
 
@@ -68,6 +69,7 @@ pub const SUPPORTED: &[&str] = &[
     "Split",
     "Slice",
     "Gather",
+    "GatherND",
     "Concat",
     "Expand",
     "Tile",
@@ -117,6 +119,14 @@ enum Val {
     Dyn {
         name: String,
         shape: Vec<usize>,
+    },
+    /// A computed value whose batch axis an ONNX `Transpose` moved from the front: the ONNX
+    /// value is held value `name` (batch first, per-sample `shape`) permuted by `perm`
+    /// (`moved.rs`).
+    Moved {
+        name: String,
+        shape: Vec<usize>,
+        perm: Vec<usize>,
     },
 }
 
@@ -175,6 +185,11 @@ pub fn convert(model: &ModelProto, external: &ExternalData) -> Result<Converted,
         Some(Val::Const(_)) => {
             return Err(ImportError::Output {
                 problem: format!("{out_name:?} does not depend on the input"),
+            });
+        }
+        Some(Val::Moved { .. }) => {
+            return Err(ImportError::Output {
+                problem: format!("{out_name:?} does not have the batch as its first axis"),
             });
         }
         None => {
@@ -326,7 +341,7 @@ impl Ctx<'_> {
         match inputs.get(i) {
             None | Some(None) => Ok(None),
             Some(Some(Val::Const(t))) => Ok(Some(t)),
-            Some(Some(Val::Dyn { .. })) => Err(self.not_constant(i)),
+            Some(Some(Val::Dyn { .. } | Val::Moved { .. })) => Err(self.not_constant(i)),
         }
     }
 
@@ -462,7 +477,15 @@ impl Converter {
             })?;
             inputs.push(Some(val.clone()));
         }
-        let all_const = inputs.iter().all(|i| !matches!(i, Some(Val::Dyn { .. })));
+        if let Some(i) = inputs
+            .iter()
+            .position(|i| matches!(i, Some(Val::Moved { .. })))
+        {
+            return self.moved_input(n, &name, &inputs, i);
+        }
+        let all_const = inputs
+            .iter()
+            .all(|i| matches!(i, None | Some(Val::Const(_))));
         if n.op_type == "Shape"
             && let Some(Some(Val::Dyn { shape, .. })) = inputs.first()
         {
@@ -577,7 +600,7 @@ impl Converter {
             "Reshape" => self.reshape(n, &ctx, inputs)?,
             "Flatten" => self.flatten(n, &ctx, inputs)?,
             "Squeeze" | "Unsqueeze" => self.squeeze(n, &ctx, inputs)?,
-            "Transpose" => self.transpose(n, &ctx, inputs)?,
+            "Transpose" => return self.transpose(n, name, &ctx, inputs, &out),
             "Slice" => self.slice(&ctx, inputs)?,
             "Gather" => return self.gather(n, name, &ctx, inputs, &out),
             "Split" => return self.split(n, name, &ctx, inputs),

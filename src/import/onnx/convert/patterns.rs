@@ -6,7 +6,7 @@
 //! Both run after the node walk, on convoy's own graph; the bundle's check samples then
 //! confirm the rewritten graph against the reference outputs like any other.
 
-use std::collections::HashMap;
+use std::collections::{HashMap, HashSet};
 
 use crate::graph::build::NamedTensor;
 use crate::graph::{Node, Op, ReduceKind, WeightLayout};
@@ -213,10 +213,13 @@ fn reshape_tensor(tensors: &mut [NamedTensor], name: &str, shape: &[usize]) {
     }
 }
 
-/// Channels-last blocks of `[C, H, W]` values: `Transpose [1, 2, 0]`, a chain of ops that
-/// each work on the last axis position by position, `Transpose [2, 0, 1]`. The chain is
-/// rewritten channels-first (layer norm over axis 0, dense layers as 1×1 convolutions,
-/// constants as `[C, 1, 1]`) and both transposes become aliases.
+/// Channels-last blocks of `[C, H, W]` values: `Transpose [1, 2, 0]`, then ops that each
+/// work on the last axis position by position (a chain, or a small graph of them such as
+/// GELU written out as `x · ½(1 + erf(x/√2))`), every value of which is read only inside the
+/// block or by a closing `Transpose [2, 0, 1]`. The block is rewritten channels-first (layer
+/// norm over axis 0, dense layers as 1×1 convolutions, constants as `[C, 1, 1]`) and the
+/// transposes become aliases. Every value of the block has rank 3 and is permuted the same
+/// way, so broadcasting between two of them means the same channels-first.
 pub(super) fn channels_first_blocks(
     nodes: &mut [Node],
     tensors: &mut [NamedTensor],
@@ -228,41 +231,67 @@ pub(super) fn channels_first_blocks(
             continue;
         }
         let links = Links::new(nodes, output);
-        let mut chain = Vec::new();
-        let mut cur = nodes[i].output.clone();
-        let end = loop {
-            let Some(j) = links.only_reader(&cur) else {
-                break None;
-            };
-            match &nodes[j].op {
-                Op::Transpose { perm } if perm == &[2, 0, 1] => break Some(j),
-                op if nodes[j].inputs.len() == 1 && position_wise(op, tensors) => {
-                    chain.push(j);
-                    cur = nodes[j].output.clone();
-                }
-                _ => break None,
-            }
-        };
-        let Some(end) = end else {
+        let Some((steps, exits)) = channels_last_block(nodes, tensors, &links, i) else {
             continue;
         };
-        for &j in &chain {
+        for &j in &steps {
             let op = std::mem::replace(&mut nodes[j].op, Op::Identity);
             nodes[j].op = channels_first(op, tensors);
         }
         nodes[i].op = Op::Identity;
-        nodes[end].op = Op::Identity;
+        for &j in &exits {
+            nodes[j].op = Op::Identity;
+        }
         notes.push(format!(
             "{} … {}: a channels-last block computed channels-first ({} steps, no transposes)",
             nodes[i].name,
-            nodes[end].name,
-            chain.len()
+            nodes[exits[exits.len() - 1]].name,
+            steps.len()
         ));
     }
     notes
 }
 
-/// Ops of one value that treat every position of `[H, W, C]` alike over its last axis.
+/// The block opened by the transpose at `start`: its position-wise steps and its closing
+/// transposes, by node index; `None` when some value of the block escapes it.
+fn channels_last_block(
+    nodes: &[Node],
+    tensors: &[NamedTensor],
+    links: &Links,
+    start: usize,
+) -> Option<(Vec<usize>, Vec<usize>)> {
+    let mut inside: HashSet<&str> = HashSet::from([nodes[start].output.as_str()]);
+    let (mut steps, mut exits) = (Vec::new(), Vec::new());
+    // Nodes are in graph order, so a step's inputs are settled before it is met.
+    for (j, node) in nodes.iter().enumerate().skip(start + 1) {
+        if !node.inputs.iter().any(|v| inside.contains(v.as_str())) {
+            continue;
+        }
+        let all_inside = node.inputs.iter().all(|v| inside.contains(v.as_str()));
+        match &node.op {
+            Op::Transpose { perm } if perm == &[2, 0, 1] => exits.push(j),
+            op if all_inside && position_wise(op, tensors) => {
+                steps.push(j);
+                inside.insert(node.output.as_str());
+            }
+            _ => return None,
+        }
+    }
+    // Every value of the block, the opening one included, is read only inside it.
+    let escapes = |value: &String| {
+        links.readers.get(value).is_none_or(|readers| {
+            readers
+                .iter()
+                .any(|r| !(steps.contains(r) || exits.contains(r)))
+        })
+    };
+    let sealed = !exits.is_empty()
+        && !escapes(&nodes[start].output)
+        && !steps.iter().any(|&j| escapes(&nodes[j].output));
+    sealed.then_some((steps, exits))
+}
+
+/// Ops that treat every position of `[H, W, C]` values alike over their last axis.
 fn position_wise(op: &Op, tensors: &[NamedTensor]) -> bool {
     match op {
         Op::LayerNorm {
@@ -290,7 +319,8 @@ fn position_wise(op: &Op, tensors: &[NamedTensor]) -> bool {
             // A constant of one value per channel (or one value) on the last axis.
             Some((_, Some(c), _)) => tensor(tensors, c)
                 .is_some_and(|t| t.1.len() == 3 && t.1[0] == 1 && t.1[1] == 1 || t.2.len() == 1),
-            Some((_, None, _)) => false,
+            // Two values of the block, permuted alike.
+            Some((_, None, _)) => true,
             None => true,
         },
     }
@@ -344,6 +374,7 @@ fn channels_first(op: Op, tensors: &mut [NamedTensor]) -> Op {
             if let Some((_, Some(c), _)) = op.binary()
                 && let Some(t) = tensor_mut(tensors, c)
                 && t.1.len() == 3
+                && t.1[..2] == [1, 1]
             {
                 t.1 = vec![t.1[2], 1, 1];
             }
