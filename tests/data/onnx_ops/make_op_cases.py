@@ -565,6 +565,27 @@ def build():
           node("Transpose", ["r"], ["y"], perm=[1, 0, 2, 3])], {"c": f32(1, 2, 3).reshape(3, 1, 1)},
          expect=R, batch=3,
          note="an Add of a [3,1,1] constant to [C,N,H,W] adds along the batch axis (valid only for N = 3)")
+    # ------------------------------------------------ the dynamo exporter's as_strided: the
+    # batch flattened, indices n*S + offset computed from the batch size
+    def as_strided(name, shape, scale, offsets, expect="ok", note=""):
+        nodes = [
+            node("Shape", ["x"], ["sh"]), node("Gather", ["sh", "zero"], ["n"], axis=0),
+            node("Range", ["zero", "n", "one"], ["ramp"]), node("Mul", ["ramp", "scale"], ["starts"]),
+            node("Unsqueeze", ["starts", "ax"], ["starts4"]), node("Add", ["starts4", "off"], ["idx"]),
+            node("Reshape", ["x", "flat"], ["xf"]), node("Gather", ["xf", "idx"], ["y"], axis=0),
+        ]
+        inits = {"zero": np.array(0, np.int64), "one": np.array(1, np.int64), "scale": np.array(scale, np.int64),
+                 "ax": i64(*range(1, 1 + offsets.ndim)), "off": offsets[None].astype(np.int64), "flat": i64(-1)}
+        case(name, "Gather", 18, shape, nodes, inits, expect=expect, note=note)
+
+    as_strided("as_strided_permute_pooled", [6, 1, 1], 6, np.arange(6).reshape(1, 1, 6) * 1,
+               note="x.permute(0, 2, 3, 1) of [N,6,1,1] as the dynamo exporter writes it: Gather(x.reshape(-1), n*6 + c)")
+    as_strided("as_strided_reordered", [2, 3, 1], 6, np.array([[[5, 0], [1, 4]]]),
+               note="offsets in any order within each sample's 6 values")
+    as_strided("refuse_as_strided_previous_sample", [6, 1, 1], 6, np.arange(-1, 5).reshape(1, 1, 6), expect=R,
+               note="offset -1 reads the previous sample's last value (sample 0: the batch's last)")
+    as_strided("refuse_as_strided_other_stride", [6, 1, 1], 3, np.arange(3).reshape(1, 1, 3), expect=R,
+               note="stride 3 for samples of 6 values: samples overlap")
     case("refuse_gathernd_batch", "GatherND", 13, X4, [node("GatherND", ["x", "i"], ["y"])], {"i": i64(0, 1).reshape(2, 1)},
          expect=R, note="GatherND on the batch axis picks batch rows")
 

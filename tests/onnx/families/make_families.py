@@ -714,19 +714,25 @@ def op_counts(model_proto):
     return dict(sorted(counts.items()))
 
 
+def _show(name, arr):
+    """`name=[values]`, or `name: int64 [shape]` when the values would not fit a line."""
+    text = f"{name}={arr.tolist()}"
+    return text if len(text) <= 80 else f"{name}: int64 {list(arr.shape)}"
+
+
 def int_constants_equal_to(m, value):
     """Names of int64 initializers / Constant nodes that contain `value` (to find a baked-in batch)."""
     hits = []
     for t in m.graph.initializer:
         if t.data_type == onnx.TensorProto.INT64 and value in onnx.numpy_helper.to_array(t).reshape(-1).tolist():
-            hits.append(f"{t.name}={onnx.numpy_helper.to_array(t).tolist()}")
+            hits.append(_show(t.name, onnx.numpy_helper.to_array(t)))
     for n in m.graph.node:
         if n.op_type == "Constant":
             for a in n.attribute:
                 if a.name == "value" and a.t.data_type == onnx.TensorProto.INT64:
                     arr = onnx.numpy_helper.to_array(a.t)
                     if value in arr.reshape(-1).tolist():
-                        hits.append(f"{n.output[0]}={arr.tolist()}")
+                        hits.append(_show(n.output[0], arr))
     return hits
 
 
@@ -825,7 +831,7 @@ for _net in NETS:
     if _net == "convnext":
         EXPORTS.append((_net, "torchscript", "opset13", {"opset": 13}))
     EXPORTS.append((_net, "dynamo", None, {}))
-    if _net == "resnet_narrow":
+    if _net in ("resnet_narrow", "convnext"):
         EXPORTS.append((_net, "dynamo", "fixed8", {"fixed": True}))
 
 

@@ -186,8 +186,8 @@ impl Converter {
             (Val::Const(_), Val::Const(_)) => {
                 return Err(ctx.unsupported("a chain of constants cannot be folded here"));
             }
-            (Val::Moved { .. }, _) | (_, Val::Moved { .. }) => {
-                return Err(ctx.unsupported("an operand has its batch axis moved"));
+            _ => {
+                return Err(ctx.unsupported("an operand is not a batch-first computed value"));
             }
         };
         let refs: Vec<&str> = inputs.iter().map(String::as_str).collect();

@@ -36,7 +36,7 @@ impl Converter {
         let bias = match inputs.get(2) {
             None | Some(None) => None,
             Some(Some(Val::Const(t))) => Some(t.clone()),
-            Some(Some(Val::Dyn { .. } | Val::Moved { .. })) => return Err(ctx.not_constant(2)),
+            Some(Some(_)) => return Err(ctx.not_constant(2)),
         };
         let (kh, kw) = (w.shape[2], w.shape[3]);
         if let Some(ks) = attr_ints_checked(n, "kernel_shape")?
@@ -151,7 +151,6 @@ impl Converter {
         }
         let bias = match inputs.get(2) {
             None | Some(None) => None,
-            Some(Some(Val::Dyn { .. } | Val::Moved { .. })) => return Err(ctx.not_constant(2)),
             Some(Some(Val::Const(c))) => {
                 let v = c.to_f32();
                 let per_out: Vec<f32> = match (c.shape.as_slice(), v.len()) {
@@ -168,6 +167,7 @@ impl Converter {
                 };
                 Some(per_out)
             }
+            Some(Some(_)) => return Err(ctx.not_constant(2)),
         };
         let wname = self.add_tensor(
             &format!("{name}.weight"),

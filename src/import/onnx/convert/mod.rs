@@ -14,6 +14,7 @@
 use std::collections::{BTreeMap, HashMap, HashSet};
 
 mod elementwise;
+mod flat;
 mod layers;
 mod layout;
 mod moved;
@@ -128,6 +129,18 @@ enum Val {
         shape: Vec<usize>,
         perm: Vec<usize>,
     },
+    /// A computed value seen with the whole batch flattened into its one axis (`flat.rs`):
+    /// held value `name` with per-sample `shape`.
+    Flat {
+        name: String,
+        shape: Vec<usize>,
+    },
+    /// Integers computed from the batch size: entry `[n, rest…]` is `n · step +
+    /// offset[rest…]` (`flat.rs`).
+    Ramp {
+        step: i64,
+        offset: ConstTensor,
+    },
 }
 
 /// Converts a decoded model.
@@ -187,7 +200,7 @@ pub fn convert(model: &ModelProto, external: &ExternalData) -> Result<Converted,
                 problem: format!("{out_name:?} does not depend on the input"),
             });
         }
-        Some(Val::Moved { .. }) => {
+        Some(Val::Moved { .. } | Val::Flat { .. } | Val::Ramp { .. }) => {
             return Err(ImportError::Output {
                 problem: format!("{out_name:?} does not have the batch as its first axis"),
             });
@@ -204,6 +217,8 @@ pub fn convert(model: &ModelProto, external: &ExternalData) -> Result<Converted,
         });
     }
     let rewrites = patterns::fuse_layer_norms(&mut c.nodes, &mut c.tensors, &output);
+    c.notes.extend(rewrites);
+    let rewrites = patterns::fuse_gelus(&mut c.nodes, &c.tensors, &output);
     c.notes.extend(rewrites);
     let rewrites = patterns::channels_first_blocks(&mut c.nodes, &mut c.tensors, &output);
     c.notes.extend(rewrites);
@@ -341,7 +356,7 @@ impl Ctx<'_> {
         match inputs.get(i) {
             None | Some(None) => Ok(None),
             Some(Some(Val::Const(t))) => Ok(Some(t)),
-            Some(Some(Val::Dyn { .. } | Val::Moved { .. })) => Err(self.not_constant(i)),
+            Some(Some(_)) => Err(self.not_constant(i)),
         }
     }
 
@@ -477,6 +492,9 @@ impl Converter {
             })?;
             inputs.push(Some(val.clone()));
         }
+        if self.is_batch_indexing(n, &inputs) {
+            return self.batch_indexing(n, &name, &inputs);
+        }
         if let Some(i) = inputs
             .iter()
             .position(|i| matches!(i, Some(Val::Moved { .. })))
@@ -601,6 +619,7 @@ impl Converter {
             "Flatten" => self.flatten(n, &ctx, inputs)?,
             "Squeeze" | "Unsqueeze" => self.squeeze(n, &ctx, inputs)?,
             "Transpose" => return self.transpose(n, name, &ctx, inputs, &out),
+            "GatherND" => return self.gather_nd(n, name, &ctx, inputs, &out),
             "Slice" => self.slice(&ctx, inputs)?,
             "Gather" => return self.gather(n, name, &ctx, inputs, &out),
             "Split" => return self.split(n, name, &ctx, inputs),

@@ -121,7 +121,7 @@ impl Converter {
         let picked = &held.perm[..k.min(held.perm.len())];
         if k == 0 || k >= held.perm.len() || picked.contains(&0) {
             return Err(ctx.unsupported(format!(
-                "indices pick {k} leading axes, which must be 1 or more axes after the batch"
+                "the indices pick the first {k} axes, which must all lie after the batch axis (a transpose can move the batch behind them)"
             )));
         }
         let kept: Vec<usize> = held.perm[k..].iter().copied().filter(|&a| a != 0).collect();

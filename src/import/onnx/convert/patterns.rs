@@ -1,15 +1,15 @@
-//! Rewrites of the converted graph that exporters make necessary: a layer norm written out
-//! as arithmetic (older opsets) becomes one layer-norm node, and channels-last blocks
+//! Rewrites of the converted graph that exporters make necessary: a layer norm or a GELU
+//! written out as arithmetic (older opsets) becomes one node, and channels-last blocks
 //! bracketed by transposes (ConvNeXt's `permute → LayerNorm → Linear → GELU → Linear →
 //! permute`) are computed channels-first, so no data is moved at all.
 //!
-//! Both run after the node walk, on convoy's own graph; the bundle's check samples then
+//! All run after the node walk, on convoy's own graph; the bundle's check samples then
 //! confirm the rewritten graph against the reference outputs like any other.
 
 use std::collections::{HashMap, HashSet};
 
 use crate::graph::build::NamedTensor;
-use crate::graph::{Node, Op, ReduceKind, WeightLayout};
+use crate::graph::{GeluApproximation, Node, Op, ReduceKind, WeightLayout};
 
 /// Who reads each value.
 struct Links {
@@ -77,6 +77,78 @@ pub(super) fn fuse_layer_norms(
         i += 1;
     }
     notes
+}
+
+/// GELU written out as before opset 20 (`x / √2 → Erf → + 1 → · x → · ½`, Hendrycks and
+/// Gimpel 2016, as PyTorch's exporter spells `gelu`) becomes one GELU step. Returns one note
+/// per rewrite.
+pub(super) fn fuse_gelus(
+    nodes: &mut Vec<Node>,
+    tensors: &[NamedTensor],
+    output: &str,
+) -> Vec<String> {
+    let mut notes = Vec::new();
+    let mut i = 0;
+    while i < nodes.len() {
+        if let Some(steps) = match_gelu(nodes, tensors, output, i) {
+            let [_, _, _, _, last] = steps;
+            notes.push(format!(
+                "{} … {}: GELU written out as arithmetic, fused into one step",
+                nodes[i].name, nodes[last].name
+            ));
+            nodes[last].op = Op::Gelu {
+                approximation: GeluApproximation::None,
+            };
+            nodes[last].inputs = vec![nodes[i].inputs[0].clone()];
+            let mut gone = steps[..4].to_vec();
+            gone.sort_unstable();
+            for g in gone.into_iter().rev() {
+                nodes.remove(g);
+            }
+            continue;
+        }
+        i += 1;
+    }
+    notes
+}
+
+/// `Div(x, √2)` (or `Mul(x, 1/√2)`) at node `i`, `Erf`, `Add 1`, `Mul(x, ·)`, `Mul ½`, each
+/// read only by the next: the five node indices.
+fn match_gelu(
+    nodes: &[Node],
+    tensors: &[NamedTensor],
+    output: &str,
+    i: usize,
+) -> Option<[usize; 5]> {
+    let scalar = |c: &Option<String>, want: f32| {
+        c.as_deref()
+            .and_then(|c| tensor(tensors, c))
+            .is_some_and(|t| t.2.len() == 1 && (t.2[0] - want).abs() <= 1e-6 * want.abs())
+    };
+    let scaled = match &nodes[i].op {
+        Op::Div {
+            constant,
+            constant_first: false,
+        } => scalar(constant, std::f32::consts::SQRT_2),
+        Op::Mul { constant } => scalar(constant, std::f32::consts::FRAC_1_SQRT_2),
+        _ => false,
+    };
+    if !scaled {
+        return None;
+    }
+    let links = Links::new(nodes, output);
+    let x = &nodes[i].inputs[0];
+    let erf = links.only_reader(&nodes[i].output)?;
+    let add = links.only_reader(&nodes[erf].output)?;
+    let times_x = links.only_reader(&nodes[add].output)?;
+    let half = links.only_reader(&nodes[times_x].output)?;
+    let fits = matches!(nodes[erf].op, Op::Erf)
+        && matches!(&nodes[add].op, Op::Add { constant } if scalar(constant, 1.0))
+        && matches!(nodes[times_x].op, Op::Mul { constant: None })
+        && nodes[times_x].inputs.contains(x)
+        && nodes[times_x].inputs.contains(&nodes[add].output)
+        && matches!(&nodes[half].op, Op::Mul { constant } if scalar(constant, 0.5));
+    fits.then_some([i, erf, add, times_x, half])
 }
 
 /// The normalising core of a written-out layer norm, by node index.
