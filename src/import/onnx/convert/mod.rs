@@ -192,25 +192,7 @@ pub fn convert(model: &ModelProto, external: &ExternalData) -> Result<Converted,
             ),
         });
     }
-    let out_name = &graph.output[0].name;
-    let output = match c.vals.get(out_name) {
-        Some(Val::Dyn { name, .. }) => name.clone(),
-        Some(Val::Const(_)) => {
-            return Err(ImportError::Output {
-                problem: format!("{out_name:?} does not depend on the input"),
-            });
-        }
-        Some(Val::Moved { .. } | Val::Flat { .. } | Val::Ramp { .. }) => {
-            return Err(ImportError::Output {
-                problem: format!("{out_name:?} does not have the batch as its first axis"),
-            });
-        }
-        None => {
-            return Err(ImportError::Output {
-                problem: format!("{out_name:?} is not produced by any node"),
-            });
-        }
-    };
+    let output = c.output_value(&graph.output[0].name)?;
     if output == input {
         return Err(ImportError::Output {
             problem: "the output is the input itself".into(),
@@ -251,6 +233,23 @@ pub fn convert(model: &ModelProto, external: &ExternalData) -> Result<Converted,
             .trim()
             .to_string(),
     })
+}
+
+impl Converter {
+    /// Our name for the graph's output: a computed value with the batch in front.
+    fn output_value(&self, out_name: &str) -> Result<String, ImportError> {
+        let problem = match self.vals.get(out_name) {
+            Some(Val::Dyn { name, .. }) => return Ok(name.clone()),
+            Some(Val::Const(_)) => "does not depend on the input",
+            Some(Val::Moved { .. } | Val::Flat { .. } | Val::Ramp { .. }) => {
+                "does not have the batch as its first axis"
+            }
+            None => "is not produced by any node",
+        };
+        Err(ImportError::Output {
+            problem: format!("{out_name:?} {problem}"),
+        })
+    }
 }
 
 fn default_opset(model: &ModelProto) -> Result<i64, ImportError> {

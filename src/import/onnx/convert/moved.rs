@@ -134,18 +134,7 @@ impl Converter {
             |axes: &[usize]| -> Vec<usize> { axes.iter().filter_map(|&a| held.dim(a)).collect() };
         let picked_dims = dims(picked);
         let positions: usize = picked_dims.iter().product();
-        let mut linear = Vec::new();
-        for row in idx.to_i64().chunks(k) {
-            let mut at = 0usize;
-            for (&i, &d) in row.iter().zip(&picked_dims) {
-                let j = if i < 0 { i + d as i64 } else { i };
-                if !(0..d as i64).contains(&j) {
-                    return Err(ctx.unsupported(format!("index {i} is out of range for size {d}")));
-                }
-                at = at * d + j as usize;
-            }
-            linear.push(at);
-        }
+        let linear = linear_positions(ctx, &idx.to_i64(), &picked_dims)?;
         let lead = &idx.shape[..idx.shape.len() - 1];
         let mut merged = dims(&kept);
         merged.push(positions);
@@ -303,4 +292,24 @@ impl Converter {
         self.push(name, op, &[input], out, result);
         out.to_string()
     }
+}
+
+/// Rows of `dims.len()` indices (negative ones counted from the end) as row-major positions
+/// in a block of shape `dims`.
+fn linear_positions(
+    ctx: &Ctx<'_>,
+    rows: &[i64],
+    dims: &[usize],
+) -> Result<Vec<usize>, ImportError> {
+    rows.chunks(dims.len())
+        .map(|row| {
+            row.iter().zip(dims).try_fold(0usize, |at, (&i, &d)| {
+                let j = if i < 0 { i + d as i64 } else { i };
+                if !(0..d as i64).contains(&j) {
+                    return Err(ctx.unsupported(format!("index {i} is out of range for size {d}")));
+                }
+                Ok(at * d + j as usize)
+            })
+        })
+        .collect()
 }
