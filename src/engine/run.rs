@@ -9,7 +9,8 @@
 //! makes the slicing invisible in the results.
 
 use super::kernels::gemm::{BSource, Epilogue, GemmScratch, PackedWeights, gemm};
-use super::kernels::{depthwise, elementwise, layout, norm, pool};
+use super::kernels::simd::Machine;
+use super::kernels::{depthwise, elementwise, layout, norm, pool, vmath};
 use super::plan::{ConvKind, ConvStep, Plan, StepKind};
 
 /// Buffers for one slice of a batch at a time (see [`Plan::slice_samples`]); grow-only, so a
@@ -202,7 +203,7 @@ impl Plan {
             }
             StepKind::Act(a) => {
                 out.copy_from_slice(input);
-                a.apply_slice(out);
+                vmath::apply_on(Machine::new_or_scalar(self.isa), *a, out);
             }
             kind => {
                 for s in 0..batch {

@@ -4,9 +4,10 @@
 //! ones: identity, ReLU, clip, leaky ReLU, hard sigmoid, hard swish) are also applied in vector
 //! registers by the kernels (`apply_vec`); both versions are written as the same sequence of
 //! IEEE operations with the same comparison rules, so a value gets the same bits whichever one
-//! computes it. The transcendental ones (sigmoid, tanh, SiLU, the two GELUs) are evaluated in
-//! `f64` and rounded once to `f32`, which makes them accurate to about half an `f32` ulp and, as
-//! they only ever run through this scalar code, identical on every path.
+//! computes it. The transcendental ones are defined here in `f64`, rounded once to `f32` (about
+//! half an `f32` ulp); the kernels compute sigmoid, SiLU, tanh and the erf GELU in vector
+//! registers instead (`vmath.rs`, a few ulp, the same bits wherever a value lies in a buffer),
+//! and the rest (the tanh GELU, exp, log, erf, ...) element by element through this code.
 
 use super::simd::Simd;
 

@@ -21,6 +21,7 @@ use super::copy::{copy_short, zero_short};
 use super::gemm::{ConvGeom, Epilogue};
 use super::isa::Isa;
 use super::simd::{Machine, Scalar, Simd};
+use super::vmath;
 
 /// Depthwise weights `[C*mult, 1, kh, kw]`, bound to the instruction set that will run them.
 pub struct PackedDepthwise {
@@ -304,7 +305,7 @@ unsafe fn run<S: Simd>(s: S, job: &Job<'_>) {
         if !job.act.is_cheap() {
             // SAFETY: the plane is inside the output and nothing else refers to it now.
             let out = unsafe { std::slice::from_raw_parts_mut(plane.out, plane_out) };
-            job.act.apply_slice(out);
+            vmath::apply_slice(s, job.act, out);
         }
     }
 }

@@ -31,6 +31,7 @@ use std::ops::Range;
 use super::activation::Activation;
 use super::isa::Isa;
 use super::simd::{Machine, Scalar, Simd};
+use super::vmath;
 use kernel::Out;
 use pack::AlignedBuf;
 
@@ -564,7 +565,7 @@ unsafe fn run<S: Simd, const MR: usize, const NV: usize, const VM: usize, const 
                 // reference to C is live.
                 let seg =
                     unsafe { std::slice::from_raw_parts_mut(out.c.add(row * out.ldc + n0), nb) };
-                job.act.apply_slice(seg);
+                vmath::apply_slice(s, job.act, seg);
             }
         }
         n0 += nb;

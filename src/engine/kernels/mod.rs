@@ -13,6 +13,7 @@ pub mod layout;
 pub mod norm;
 pub mod peak;
 pub mod pool;
-mod simd;
+pub(crate) mod simd;
 #[cfg(test)]
 mod testutil;
+pub(crate) mod vmath;

@@ -95,6 +95,11 @@ pub(crate) trait Simd: Copy {
     fn min(self, a: Self::V, b: Self::V) -> Self::V;
     /// `if a > b { t } else { f }` per lane.
     fn select_gt(self, a: Self::V, b: Self::V, t: Self::V, f: Self::V) -> Self::V;
+    /// Rounds to the nearest integer, ties to even (IEEE `roundTiesToEven`).
+    fn round(self, a: Self::V) -> Self::V;
+    /// `2^n` for lanes holding whole numbers `n` in `-126..=127` (exact: the exponent field
+    /// is written directly); other lanes are unspecified.
+    fn pow2i(self, n: Self::V) -> Self::V;
 }
 
 /// Plain Rust, one lane, no fused multiply-add.
@@ -188,6 +193,14 @@ impl Simd for Scalar {
     #[inline(always)]
     fn select_gt(self, a: f32, b: f32, t: f32, f: f32) -> f32 {
         if a > b { t } else { f }
+    }
+    #[inline(always)]
+    fn round(self, a: f32) -> f32 {
+        a.round_ties_even()
+    }
+    #[inline(always)]
+    fn pow2i(self, n: f32) -> f32 {
+        f32::from_bits(((n as i32 + 127) as u32) << 23)
     }
 }
 
@@ -297,6 +310,21 @@ mod tests {
             for i in 0..l {
                 let e = if xs[i] > ys[i] { xs[i] } else { 7.0 };
                 assert_eq!(out[i].to_bits(), e.to_bits());
+            }
+            // Ties go to even (2.5 → 2, -0.5 → -0), and 2^n is exact across the normal range.
+            let ties: Vec<f32> = (0..l).map(|i| i as f32 * 0.75 - 5.5).collect();
+            s.store(out.as_mut_ptr(), s.round(s.load(ties.as_ptr())));
+            for i in 0..l {
+                let e = ties[i].round_ties_even();
+                assert_eq!(out[i].to_bits(), e.to_bits(), "round lane {i}");
+            }
+            for base in [-126i32, -40, 0, 100, 127 - l as i32 + 1] {
+                let ns: Vec<f32> = (0..l).map(|i| (base + i as i32) as f32).collect();
+                s.store(out.as_mut_ptr(), s.pow2i(s.load(ns.as_ptr())));
+                for i in 0..l {
+                    assert_eq!(out[i], 2f32.powi(base + i as i32), "pow2i lane {i}");
+                    assert_eq!(out[i], sc.pow2i(ns[i]));
+                }
             }
             for n in 0..=l {
                 let mut dst = vec![-1.0f32; l];

@@ -128,6 +128,7 @@ pub(super) fn fuse(
     };
     fold_batch_norms(nodes, &g, folded);
     fuse_residual_adds(nodes, &g, folded);
+    fuse_silus(nodes, &g, folded);
     fuse_activations(nodes, &g, folded);
     nodes.retain(|n| !matches!(n.kind, IrKind::Gone));
 }
@@ -283,6 +284,46 @@ fn fuse_residual_adds(nodes: &mut [IrNode<'_>], g: &Links<'_>, folded: &mut Vec<
         folded.push(format!("{} added into {}", nodes[i].name, conv.name));
         conv.output = nodes[i].output;
         nodes[i] = conv;
+    }
+}
+
+/// `Mul(x, Sigmoid(x))`, as exporters write SiLU (EfficientNet's swish, Ramachandran et al.
+/// 2017), into one SiLU step, which the layer producing `x` can then take into its epilogue.
+fn fuse_silus(nodes: &mut [IrNode<'_>], g: &Links<'_>, folded: &mut Vec<String>) {
+    let (graph_output, alias_of) = (g.graph_output, g.alias_of);
+    for i in 0..nodes.len() {
+        let IrKind::Binary {
+            kind: BinaryKind::Mul,
+            constant: None,
+            ..
+        } = nodes[i].kind
+        else {
+            continue;
+        };
+        let (a, b) = (nodes[i].inputs[0], nodes[i].inputs[1]);
+        let count = readers(nodes, alias_of, graph_output);
+        let producers = producer_of(nodes);
+        let sigmoid_of = |v: ValueId, x: ValueId| {
+            producers.get(&v).copied().filter(|&p| {
+                matches!(nodes[p].kind, IrKind::Act(Activation::Sigmoid))
+                    && alias_of[nodes[p].inputs[0]] == alias_of[x]
+                    && alias_of[v] == v
+                    && count[v] == 1
+            })
+        };
+        let Some((sig, x)) = [(b, a), (a, b)]
+            .into_iter()
+            .find_map(|(v, x)| sigmoid_of(v, x).map(|p| (p, x)))
+        else {
+            continue;
+        };
+        nodes[sig].kind = IrKind::Gone;
+        nodes[i].kind = IrKind::Act(Activation::Silu);
+        nodes[i].inputs = vec![x];
+        folded.push(format!(
+            "{} and {} fused into one SiLU",
+            nodes[sig].name, nodes[i].name
+        ));
     }
 }
 

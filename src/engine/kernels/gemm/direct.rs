@@ -31,6 +31,7 @@ pub(super) mod rows;
 
 use super::super::copy::{copy_even, copy_short, zero_short};
 use super::super::simd::Simd;
+use super::super::vmath;
 use super::kernel::{self, Out};
 use super::{ConvGeom, GemmScratch, Job};
 
@@ -437,7 +438,7 @@ pub(super) unsafe fn run<S: Simd, const MR: usize, const NV: usize>(
                     job.cols.len(),
                 )
             };
-            job.act.apply_slice(seg);
+            vmath::apply_slice(s, job.act, seg);
         }
     }
 }

@@ -124,4 +124,15 @@ impl Simd for Neon {
     ) -> float32x4_t {
         cpu!(vbslq_f32(vcgtq_f32(a, b), t, f))
     }
+    #[inline(always)]
+    fn round(self, a: float32x4_t) -> float32x4_t {
+        cpu!(vrndnq_f32(a))
+    }
+    #[inline(always)]
+    fn pow2i(self, n: float32x4_t) -> float32x4_t {
+        cpu!(vreinterpretq_f32_s32(vshlq_n_s32::<23>(vaddq_s32(
+            vcvtq_s32_f32(n),
+            vdupq_n_s32(127)
+        ))))
+    }
 }

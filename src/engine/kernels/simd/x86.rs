@@ -152,6 +152,18 @@ impl Simd for Avx2 {
     fn select_gt(self, a: __m256, b: __m256, t: __m256, f: __m256) -> __m256 {
         cpu!(_mm256_blendv_ps(f, t, _mm256_cmp_ps::<_CMP_GT_OQ>(a, b)))
     }
+    #[inline(always)]
+    fn round(self, a: __m256) -> __m256 {
+        cpu!(_mm256_round_ps::<
+            { _MM_FROUND_TO_NEAREST_INT | _MM_FROUND_NO_EXC },
+        >(a))
+    }
+    #[inline(always)]
+    fn pow2i(self, n: __m256) -> __m256 {
+        cpu!(_mm256_castsi256_ps(_mm256_slli_epi32::<23>(
+            _mm256_add_epi32(_mm256_cvtps_epi32(n), _mm256_set1_epi32(127))
+        )))
+    }
 }
 
 /// Mask with the first `n` (at most 16) lanes set.
@@ -267,5 +279,17 @@ impl Simd for Avx512 {
             f,
             t
         ))
+    }
+    #[inline(always)]
+    fn round(self, a: __m512) -> __m512 {
+        cpu!(_mm512_roundscale_ps::<
+            { _MM_FROUND_TO_NEAREST_INT | _MM_FROUND_NO_EXC },
+        >(a))
+    }
+    #[inline(always)]
+    fn pow2i(self, n: __m512) -> __m512 {
+        cpu!(_mm512_castsi512_ps(_mm512_slli_epi32::<23>(
+            _mm512_add_epi32(_mm512_cvtps_epi32(n), _mm512_set1_epi32(127))
+        )))
     }
 }
