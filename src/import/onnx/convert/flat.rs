@@ -48,11 +48,7 @@ impl Converter {
         name: &str,
         inputs: &[Option<Val>],
     ) -> Result<(), ImportError> {
-        let ctx = Ctx {
-            node: name,
-            op: &n.op_type,
-        };
-        let out = n.output.first().cloned().unwrap_or_default();
+        let (ctx, out) = Ctx::of(n, name);
         let val = match (n.op_type.as_str(), inputs) {
             ("Reshape", [Some(Val::Dyn { name, shape }), Some(Val::Const(_))]) => Val::Flat {
                 name: name.clone(),

@@ -306,7 +306,16 @@ struct Ctx<'a> {
     op: &'a str,
 }
 
-impl Ctx<'_> {
+impl<'a> Ctx<'a> {
+    /// The context of node `n` (named `name` in our graph), and its first output's name.
+    fn of(n: &'a NodeProto, name: &'a str) -> (Ctx<'a>, String) {
+        let ctx = Ctx {
+            node: name,
+            op: &n.op_type,
+        };
+        (ctx, n.output.first().cloned().unwrap_or_default())
+    }
+
     fn unsupported(&self, problem: impl Into<String>) -> ImportError {
         ImportError::Unsupported {
             node: self.node.to_string(),
@@ -467,10 +476,7 @@ impl Converter {
 
     fn node(&mut self, n: &NodeProto, index: usize) -> Result<(), ImportError> {
         let name = self.unique_node_name(n, index);
-        let ctx = Ctx {
-            node: &name,
-            op: &n.op_type,
-        };
+        let (ctx, _) = Ctx::of(n, &name);
         if !(n.domain.is_empty() || n.domain == "ai.onnx") {
             return Err(ImportError::Domain {
                 node: name.clone(),
@@ -585,11 +591,7 @@ impl Converter {
         name: &str,
         inputs: &[Option<Val>],
     ) -> Result<(), ImportError> {
-        let ctx = Ctx {
-            node: name,
-            op: &n.op_type,
-        };
-        let out = n.output.first().cloned().unwrap_or_default();
+        let (ctx, out) = Ctx::of(n, name);
         if out.is_empty() {
             return Err(ctx.unsupported("the node has no output"));
         }

@@ -206,11 +206,7 @@ impl Converter {
         inputs: &[Option<Val>],
         at: usize,
     ) -> Result<(), ImportError> {
-        let ctx = Ctx {
-            node: name,
-            op: &n.op_type,
-        };
-        let out = n.output.first().cloned().unwrap_or_default();
+        let (ctx, out) = Ctx::of(n, name);
         match n.op_type.as_str() {
             "Transpose" => return self.transpose(n, name, &ctx, inputs, &out),
             "GatherND" => return self.gather_nd(n, name, &ctx, inputs, &out),

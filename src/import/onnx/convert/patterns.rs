@@ -49,6 +49,35 @@ fn tensor<'t>(tensors: &'t [NamedTensor], name: &str) -> Option<&'t NamedTensor>
     tensors.iter().rev().find(|t| t.0 == name)
 }
 
+/// A written-out computation found at node `i`: the nodes to delete, the node that becomes
+/// the one step, and that step's op (its input is node `i`'s first input).
+type Match = (Vec<usize>, usize, Op);
+
+/// Replaces every match of `find` (tried at each node in turn) by its one step, noting each
+/// rewrite as `first … last: what`.
+fn rewrite_all(
+    nodes: &mut Vec<Node>,
+    what: &str,
+    mut find: impl FnMut(&[Node], usize) -> Option<Match>,
+) -> Vec<String> {
+    let mut notes = Vec::new();
+    let mut i = 0;
+    while i < nodes.len() {
+        let Some((mut gone, last, op)) = find(nodes, i) else {
+            i += 1;
+            continue;
+        };
+        notes.push(format!("{} … {}: {what}", nodes[i].name, nodes[last].name));
+        nodes[last].op = op;
+        nodes[last].inputs = vec![nodes[i].inputs[0].clone()];
+        gone.sort_unstable();
+        for g in gone.into_iter().rev() {
+            nodes.remove(g);
+        }
+    }
+    notes
+}
+
 /// `ReduceMean → Sub → Pow 2 → ReduceMean → Add ε → Sqrt → Div → Mul γ` (then optionally
 /// `Add β`) over a contiguous run of axes becomes one layer norm. Returns one note per
 /// rewrite.
@@ -57,26 +86,10 @@ pub(super) fn fuse_layer_norms(
     tensors: &mut [NamedTensor],
     output: &str,
 ) -> Vec<String> {
-    let mut notes = Vec::new();
-    let mut i = 0;
-    while i < nodes.len() {
-        if let Some((gone, ln_at, ln)) = match_layer_norm(nodes, tensors, output, i) {
-            notes.push(format!(
-                "{} … {}: a layer norm written out as arithmetic, fused into one step",
-                nodes[i].name, nodes[ln_at].name
-            ));
-            nodes[ln_at].op = ln;
-            nodes[ln_at].inputs = vec![nodes[i].inputs[0].clone()];
-            let mut gone = gone;
-            gone.sort_unstable();
-            for g in gone.into_iter().rev() {
-                nodes.remove(g);
-            }
-            continue;
-        }
-        i += 1;
-    }
-    notes
+    let what = "a layer norm written out as arithmetic, fused into one step";
+    rewrite_all(nodes, what, |nodes, i| {
+        match_layer_norm(nodes, tensors, output, i)
+    })
 }
 
 /// GELU written out as before opset 20 (`x / √2 → Erf → + 1 → · x → · ½`, Hendrycks and
@@ -87,29 +100,14 @@ pub(super) fn fuse_gelus(
     tensors: &[NamedTensor],
     output: &str,
 ) -> Vec<String> {
-    let mut notes = Vec::new();
-    let mut i = 0;
-    while i < nodes.len() {
-        if let Some(steps) = match_gelu(nodes, tensors, output, i) {
-            let [_, _, _, _, last] = steps;
-            notes.push(format!(
-                "{} … {}: GELU written out as arithmetic, fused into one step",
-                nodes[i].name, nodes[last].name
-            ));
-            nodes[last].op = Op::Gelu {
-                approximation: GeluApproximation::None,
-            };
-            nodes[last].inputs = vec![nodes[i].inputs[0].clone()];
-            let mut gone = steps[..4].to_vec();
-            gone.sort_unstable();
-            for g in gone.into_iter().rev() {
-                nodes.remove(g);
-            }
-            continue;
-        }
-        i += 1;
-    }
-    notes
+    let what = "GELU written out as arithmetic, fused into one step";
+    rewrite_all(nodes, what, |nodes, i| {
+        let steps = match_gelu(nodes, tensors, output, i)?;
+        let gelu = Op::Gelu {
+            approximation: GeluApproximation::None,
+        };
+        Some((steps[..4].to_vec(), steps[4], gelu))
+    })
 }
 
 /// `Div(x, √2)` (or `Mul(x, 1/√2)`) at node `i`, `Erf`, `Add 1`, `Mul(x, ·)`, `Mul ½`, each
@@ -167,7 +165,7 @@ fn match_layer_norm(
     tensors: &mut [NamedTensor],
     output: &str,
     i: usize,
-) -> Option<(Vec<usize>, usize, Op)> {
+) -> Option<Match> {
     let links = Links::new(nodes, output);
     let core = match_core(nodes, tensors, &links, i)?;
     let mut gone = core.steps.to_vec();
