@@ -9,7 +9,7 @@ use std::path::Path;
 use sha2::{Digest, Sha256};
 
 use super::error::{BundleError, TensorProblem};
-use super::manifest::{Manifest, OutputKind};
+use super::manifest::{ImagePrep, Manifest, OutputKind};
 use super::signature::{FLAG_SIGNED, SIGNATURE_BLOCK_LEN, SignatureBlock};
 use super::version::validate_version;
 use super::{
@@ -337,53 +337,7 @@ impl Bundle {
             ));
         }
         if let Some(img) = &m.input.image {
-            let [c, h, w] = m.input.shape[..] else {
-                return Err(spec(
-                    "input.image",
-                    format!(
-                        "image input needs a [C, H, W] shape, not {:?}",
-                        m.input.shape
-                    ),
-                ));
-            };
-            if img.color.channels() != c {
-                return Err(spec(
-                    "input.image.color",
-                    format!(
-                        "{:?} gives {} channels, the model takes {c}",
-                        img.color,
-                        img.color.channels()
-                    ),
-                ));
-            }
-            if img.width != w || img.height != h {
-                return Err(spec(
-                    "input.image",
-                    format!(
-                        "target {}x{} differs from the model's {w}x{h}",
-                        img.width, img.height
-                    ),
-                ));
-            }
-            if img.mean.len() != c || img.std.len() != c {
-                return Err(spec(
-                    "input.image.mean/std",
-                    format!(
-                        "need {c} values each, got {} and {}",
-                        img.mean.len(),
-                        img.std.len()
-                    ),
-                ));
-            }
-            if !img.scale.is_finite()
-                || img.mean.iter().any(|v| !v.is_finite())
-                || img.std.iter().any(|v| !(v.is_finite() && *v > 0.0))
-            {
-                return Err(spec(
-                    "input.image",
-                    "scale and mean must be finite, std finite and positive".into(),
-                ));
-            }
+            check_image_spec(img, &m.input.shape)?;
         }
         let out_elems: usize = self.output_shape().iter().product();
         if !m.output.labels.is_empty() && m.output.labels.len() != out_elems {
@@ -400,6 +354,12 @@ impl Bundle {
         if m.output.kind == OutputKind::Probabilities && out_elems == 0 {
             return Err(spec("output.kind", "empty output".into()));
         }
+        self.check_sample_shapes()
+    }
+
+    /// The stored check samples: a sane count, input and output tensors of the right shapes.
+    fn check_sample_shapes(&self) -> Result<(), BundleError> {
+        let m = &self.manifest;
         if let Some(cs) = &m.check_samples {
             let bad = |problem: String| BundleError::CheckSamples { problem };
             if cs.count == 0 || cs.count > MAX_CHECK_SAMPLES {
@@ -427,6 +387,56 @@ impl Bundle {
         }
         Ok(())
     }
+}
+
+/// An image input's preprocessing against the model's `[C, H, W]` input.
+fn check_image_spec(img: &ImagePrep, shape: &[usize]) -> Result<(), BundleError> {
+    let spec = |field: &'static str, problem: String| BundleError::Spec { field, problem };
+    let [c, h, w] = shape[..] else {
+        return Err(spec(
+            "input.image",
+            format!("image input needs a [C, H, W] shape, not {:?}", shape),
+        ));
+    };
+    if img.color.channels() != c {
+        return Err(spec(
+            "input.image.color",
+            format!(
+                "{:?} gives {} channels, the model takes {c}",
+                img.color,
+                img.color.channels()
+            ),
+        ));
+    }
+    if img.width != w || img.height != h {
+        return Err(spec(
+            "input.image",
+            format!(
+                "target {}x{} differs from the model's {w}x{h}",
+                img.width, img.height
+            ),
+        ));
+    }
+    if img.mean.len() != c || img.std.len() != c {
+        return Err(spec(
+            "input.image.mean/std",
+            format!(
+                "need {c} values each, got {} and {}",
+                img.mean.len(),
+                img.std.len()
+            ),
+        ));
+    }
+    if !img.scale.is_finite()
+        || img.mean.iter().any(|v| !v.is_finite())
+        || img.std.iter().any(|v| !(v.is_finite() && *v > 0.0))
+    {
+        return Err(spec(
+            "input.image",
+            "scale and mean must be finite, std finite and positive".into(),
+        ));
+    }
+    Ok(())
 }
 
 /// Bundles smaller than this hash both digests on the calling thread: SHA-256 runs at about

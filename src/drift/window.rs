@@ -357,36 +357,13 @@ impl DriftWindow {
             });
         }
 
-        let live_total: u64 = class_counts.iter().sum();
-        let predicted_class = if live_total == 0 {
-            None
-        } else {
-            let classes = baseline.class_counts.len().max(class_counts.len());
-            let pad = |v: &[u64]| {
-                let mut v = v.to_vec();
-                v.resize(classes, 0);
-                v
-            };
-            let (reference, live) = (pad(&baseline.class_counts), pad(&class_counts));
-            let fractions: Vec<f64> = {
-                let n: u64 = reference.iter().sum();
-                reference.iter().map(|&c| c as f64 / n as f64).collect()
-            };
-            let psi = psi(&fractions, &live).ok();
-            let chi_square = class_chisquare(&reference, &live).ok();
-            let significant = chi_square.is_some_and(|c| c.p_value < alpha);
-            let psi_band = psi.map(PsiBand::of);
-            Some(ClassReport {
-                window: live_total as usize,
-                psi,
-                psi_band,
-                chi_square,
-                significant,
-                non_finite: class_non_finite,
-                verdict: Verdict::judge(live_total as usize, min, psi_band, significant),
-                window_counts: live,
-            })
-        };
+        let predicted_class = class_report(
+            &baseline.class_counts,
+            &class_counts,
+            class_non_finite,
+            alpha,
+            min,
+        );
         let drift = statistics.iter().any(|s| s.verdict == Verdict::Drift)
             || predicted_class
                 .as_ref()
@@ -399,6 +376,46 @@ impl DriftWindow {
             statistics,
             predicted_class,
             drift,
+        })
+    }
+}
+
+/// The predicted-class test of a window: `None` while the window holds no predictions.
+fn class_report(
+    baseline_counts: &[u64],
+    class_counts: &[u64],
+    class_non_finite: u64,
+    alpha: f64,
+    min: usize,
+) -> Option<ClassReport> {
+    let live_total: u64 = class_counts.iter().sum();
+    if live_total == 0 {
+        None
+    } else {
+        let classes = baseline_counts.len().max(class_counts.len());
+        let pad = |v: &[u64]| {
+            let mut v = v.to_vec();
+            v.resize(classes, 0);
+            v
+        };
+        let (reference, live) = (pad(baseline_counts), pad(class_counts));
+        let fractions: Vec<f64> = {
+            let n: u64 = reference.iter().sum();
+            reference.iter().map(|&c| c as f64 / n as f64).collect()
+        };
+        let psi = psi(&fractions, &live).ok();
+        let chi_square = class_chisquare(&reference, &live).ok();
+        let significant = chi_square.is_some_and(|c| c.p_value < alpha);
+        let psi_band = psi.map(PsiBand::of);
+        Some(ClassReport {
+            window: live_total as usize,
+            psi,
+            psi_band,
+            chi_square,
+            significant,
+            non_finite: class_non_finite,
+            verdict: Verdict::judge(live_total as usize, min, psi_band, significant),
+            window_counts: live,
         })
     }
 }

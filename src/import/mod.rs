@@ -280,14 +280,68 @@ fn build_bundle(
     };
     let version = options.version.clone().unwrap_or_else(|| "1".into());
     let input_shape = converted.graph.input.shape.clone();
+    let mut writer = new_writer(&converted, source, options, &name, &version)?;
+
+    progress("verifying");
+    // A first build without check samples: the engine that computes them.
+    let plain = Bundle::from_bytes(writer.to_bytes()?)?;
+    let engine =
+        Engine::new(&plain, &EngineConfig::default()).map_err(|e| ImportError::Options {
+            what: "engine",
+            problem: e.to_string(),
+        })?;
+    let out_shape = plain.output_shape().to_vec();
+    let checks = store_check_samples(&mut writer, &engine, options, &input_shape, &out_shape)?;
+    let (writer, drift) =
+        add_drift_baseline(writer, reference.as_ref(), &plain, &engine, progress)?;
+    let bytes = writer.to_bytes()?;
+    let file_bytes = bytes.len();
+    let final_bundle = Bundle::from_bytes(bytes.clone())?;
+
+    let summary = final_bundle.summary();
+    let mut notes = converted.notes.clone();
+    notes.extend(engine.plan().folded().iter().cloned());
+    let report = ImportReport {
+        output: PathBuf::new(),
+        name,
+        version,
+        opset: converted.opset,
+        producer: converted.producer,
+        input_shape,
+        output_shape: out_shape,
+        output_kind: final_bundle.manifest().output.kind,
+        source_ops: converted.source_ops,
+        folded_nodes: converted.folded_nodes,
+        notes,
+        parameters: summary.parameters,
+        multiply_adds: summary.multiply_adds,
+        check_samples: checks.count,
+        check_from_reference: checks.from_reference,
+        max_abs_error: checks.max_abs_error,
+        bound: checks.bound,
+        file_bytes,
+        drift,
+    };
+    Ok((bytes, report))
+}
+
+/// A writer holding the converted graph, its tensors and the input and output specs.
+fn new_writer(
+    converted: &onnx::convert::Converted,
+    source: &Source<'_>,
+    options: &ImportOptions,
+    name: &str,
+    version: &str,
+) -> Result<BundleWriter, ImportError> {
+    let input_shape = converted.graph.input.shape.clone();
     let image = options
         .image
         .as_ref()
         .map(|i| i.resolve(&input_shape))
         .transpose()?;
     let mut writer = BundleWriter::new(
-        name.clone(),
-        version.clone(),
+        name.to_string(),
+        version.to_string(),
         converted.graph.clone(),
         InputSpec {
             shape: input_shape.clone(),
@@ -316,21 +370,31 @@ fn build_bundle(
     for (n, shape, data) in converted.tensors.iter().cloned() {
         writer.add_tensor(n, &shape, data)?;
     }
+    Ok(writer)
+}
 
-    progress("verifying");
-    // A first build without check samples: the engine that computes them.
-    let plain = Bundle::from_bytes(writer.to_bytes()?)?;
-    let engine =
-        Engine::new(&plain, &EngineConfig::default()).map_err(|e| ImportError::Options {
-            what: "engine",
-            problem: e.to_string(),
-        })?;
+/// What the check samples showed.
+struct CheckOutcome {
+    count: usize,
+    from_reference: bool,
+    max_abs_error: f32,
+    bound: f32,
+}
+
+/// Runs the caller's reference inputs (or generated ones) through `engine`, refuses a result
+/// off the reference by more than the tolerance, and stores the first samples in the bundle.
+fn store_check_samples(
+    writer: &mut BundleWriter,
+    engine: &Engine,
+    options: &ImportOptions,
+    input_shape: &[usize],
+    out_shape: &[usize],
+) -> Result<CheckOutcome, ImportError> {
     let in_len: usize = input_shape.iter().product();
-    let out_shape = plain.output_shape().to_vec();
     let out_len: usize = out_shape.iter().product();
     let (inputs, expected, count, from_reference) = match &options.check {
         Some((x, y)) => {
-            let n = check_shapes(x, y, &input_shape, &out_shape)?;
+            let n = check_shapes(x, y, input_shape, out_shape)?;
             (x.data.clone(), Some(y.data.clone()), n, true)
         }
         None => {
@@ -380,10 +444,26 @@ fn build_bundle(
             Some(want) => want[..stored * out_len].to_vec(),
             None => got[..stored * out_len].to_vec(),
         },
-        &out_shape,
+        out_shape,
         produced_by,
     )?;
-    let drift = match &reference {
+    Ok(CheckOutcome {
+        count,
+        from_reference,
+        max_abs_error,
+        bound,
+    })
+}
+
+/// With a reference set: its baseline, run through `engine`, added to the bundle.
+fn add_drift_baseline(
+    mut writer: BundleWriter,
+    reference: Option<&ReferenceSet>,
+    plain: &Bundle,
+    engine: &Engine,
+    progress: &mut dyn FnMut(&str),
+) -> Result<(BundleWriter, Option<BaselineReport>), ImportError> {
+    let drift = match reference {
         Some(set) => {
             progress(&format!(
                 "drift reference: running {} samples of {}",
@@ -391,7 +471,7 @@ fn build_bundle(
                 set.path().display()
             ));
             let mut shown = 0;
-            let baseline = build_baseline(set, &plain, &engine, &mut |done, total| {
+            let baseline = build_baseline(set, plain, engine, &mut |done, total| {
                 if done - shown >= PROGRESS_EVERY || done == total {
                     shown = done;
                     progress(&format!("drift reference: {done} of {total} samples"));
@@ -411,35 +491,7 @@ fn build_bundle(
         }
         None => None,
     };
-    let bytes = writer.to_bytes()?;
-    let file_bytes = bytes.len();
-    let final_bundle = Bundle::from_bytes(bytes.clone())?;
-
-    let summary = final_bundle.summary();
-    let mut notes = converted.notes.clone();
-    notes.extend(engine.plan().folded().iter().cloned());
-    let report = ImportReport {
-        output: PathBuf::new(),
-        name,
-        version,
-        opset: converted.opset,
-        producer: converted.producer,
-        input_shape,
-        output_shape: out_shape,
-        output_kind: final_bundle.manifest().output.kind,
-        source_ops: converted.source_ops,
-        folded_nodes: converted.folded_nodes,
-        notes,
-        parameters: summary.parameters,
-        multiply_adds: summary.multiply_adds,
-        check_samples: count,
-        check_from_reference: from_reference,
-        max_abs_error,
-        bound,
-        file_bytes,
-        drift,
-    };
-    Ok((bytes, report))
+    Ok((writer, drift))
 }
 
 /// The model name from a file name: its stem with characters outside the name rule replaced.

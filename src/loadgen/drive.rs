@@ -274,6 +274,36 @@ async fn call(
     }
 }
 
+/// Reports progress once a second until aborted.
+fn spawn_ticker<P: FnMut(&Progress) + Send + 'static>(
+    shared: Arc<Shared>,
+    mut progress: P,
+    start: Instant,
+    measure_from: Instant,
+    total: Duration,
+) -> tokio::task::JoinHandle<()> {
+    tokio::spawn(async move {
+        let mut tick = tokio::time::interval(Duration::from_secs(1));
+        tick.tick().await; // the first tick is immediate
+        let (mut last_done, mut last_at) = (0u64, Instant::now());
+        loop {
+            tick.tick().await;
+            let now = Instant::now();
+            let done = shared.done.load(Ordering::Relaxed);
+            let per_s = (done - last_done) as f64 / (now - last_at).as_secs_f64().max(1e-9);
+            (last_done, last_at) = (done, now);
+            progress(&Progress {
+                elapsed: now - start,
+                total,
+                warming_up: now < measure_from,
+                requests: done,
+                errors: shared.failed.load(Ordering::Relaxed),
+                per_s,
+            });
+        }
+    })
+}
+
 /// Runs `config` against its server and reports. `stop` ends the run early when it completes
 /// (the report then covers the time measured so far); `progress` is called once a second.
 ///
@@ -284,7 +314,7 @@ async fn call(
 pub async fn run<S, P>(
     config: &LoadConfig,
     stop: S,
-    mut progress: P,
+    progress: P,
 ) -> Result<LoadReport, LoadgenError>
 where
     S: Future<Output = ()> + Send + 'static,
@@ -330,30 +360,13 @@ where
             shared.stop.send_replace(true);
         })
     };
-    let ticker = {
-        let shared = Arc::clone(&shared);
-        let total = config.warmup + config.duration;
-        tokio::spawn(async move {
-            let mut tick = tokio::time::interval(Duration::from_secs(1));
-            tick.tick().await; // the first tick is immediate
-            let (mut last_done, mut last_at) = (0u64, Instant::now());
-            loop {
-                tick.tick().await;
-                let now = Instant::now();
-                let done = shared.done.load(Ordering::Relaxed);
-                let per_s = (done - last_done) as f64 / (now - last_at).as_secs_f64().max(1e-9);
-                (last_done, last_at) = (done, now);
-                progress(&Progress {
-                    elapsed: now - start,
-                    total,
-                    warming_up: now < measure_from,
-                    requests: done,
-                    errors: shared.failed.load(Ordering::Relaxed),
-                    per_s,
-                });
-            }
-        })
-    };
+    let ticker = spawn_ticker(
+        Arc::clone(&shared),
+        progress,
+        start,
+        measure_from,
+        config.warmup + config.duration,
+    );
 
     match config.pace {
         Pace::Closed { concurrency } => {

@@ -180,6 +180,22 @@ impl ServeConfig {
     /// # Errors
     /// A zero where at least one is needed.
     pub fn validate(&self) -> Result<(), ConfigError> {
+        self.validate_limits()?;
+        self.validate_tls()?;
+        self.validate_inputs_and_timing()?;
+        if self.control {
+            let token = self.control_token()?;
+            if token.is_none_or(|t| t.len() < crate::rollout::control::MIN_TOKEN_LEN) {
+                return Err(ConfigError::NoControlToken {
+                    min: crate::rollout::control::MIN_TOKEN_LEN,
+                });
+            }
+        }
+        Ok(())
+    }
+
+    /// Sizes, counts and the batching wait.
+    fn validate_limits(&self) -> Result<(), ConfigError> {
         let positive = [
             ("compute_threads", self.compute_threads),
             ("batch_limit", self.batch_limit),
@@ -215,6 +231,11 @@ impl ServeConfig {
                 problem: "must be at least 1".into(),
             });
         }
+        Ok(())
+    }
+
+    /// Certificate, key and client CA go together.
+    fn validate_tls(&self) -> Result<(), ConfigError> {
         match (&self.tls_cert_file, &self.tls_key_file) {
             (Some(_), None) => {
                 return Err(ConfigError::Invalid {
@@ -236,6 +257,11 @@ impl ServeConfig {
                 problem: "client certificates need TLS: set tls_cert_file and tls_key_file".into(),
             });
         }
+        Ok(())
+    }
+
+    /// Image size, drift window and test level, request size against the queue, shutdown.
+    fn validate_inputs_and_timing(&self) -> Result<(), ConfigError> {
         if self.max_image_pixels == 0 {
             return Err(ConfigError::Invalid {
                 key: "max_image_pixels",
@@ -271,14 +297,6 @@ impl ServeConfig {
                     self.shutdown_notice_ms, self.shutdown_grace_ms
                 ),
             });
-        }
-        if self.control {
-            let token = self.control_token()?;
-            if token.is_none_or(|t| t.len() < crate::rollout::control::MIN_TOKEN_LEN) {
-                return Err(ConfigError::NoControlToken {
-                    min: crate::rollout::control::MIN_TOKEN_LEN,
-                });
-            }
         }
         Ok(())
     }

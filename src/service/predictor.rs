@@ -92,6 +92,35 @@ impl Shared {
         result
     }
 
+    /// The request's inputs prepared for `model`: those prepared for an earlier choice when
+    /// it takes its input the same way (its drift statistics kept only if they mean the same),
+    /// otherwise checked and decoded anew off the async threads.
+    async fn prepare(
+        &self,
+        model: &Arc<ModelVersion>,
+        samples: &Arc<Vec<api::Sample>>,
+        earlier: Option<(Arc<ModelVersion>, Prepared)>,
+    ) -> Result<Prepared, ServiceError> {
+        if let Some((before, mut ready)) = earlier
+            && before.manifest.input == model.manifest.input
+        {
+            let same = match (&before.drift, &model.drift) {
+                (Some(a), Some(b)) => a.schema == b.schema,
+                _ => false,
+            };
+            if !same {
+                ready.stats = None;
+            }
+            return Ok(ready);
+        }
+        let (prep_model, samples) = (Arc::clone(model), Arc::clone(samples));
+        let limits = self.limits.clone();
+        // Decoding and resizing images is CPU work: keep it off the async I/O threads.
+        tokio::task::spawn_blocking(move || check_request(&prep_model, &samples, &limits))
+            .await
+            .map_err(|e| ServiceError::Internal(format!("preparation task failed: {e}")))?
+    }
+
     async fn predict_inner(
         &self,
         mut req: api::PredictRequest,
@@ -111,33 +140,7 @@ impl Shared {
             attempts += 1;
             let model = self.registry.resolve(&req.model, &req.version)?;
             *labels = (model.name.clone(), model.version.clone());
-            let ready = match prepared.take() {
-                // The new version takes its input the same way: no need to prepare again.
-                Some((before, mut ready)) if before.manifest.input == model.manifest.input => {
-                    // Its drift statistics are kept only if they have the same meaning.
-                    let same = match (&before.drift, &model.drift) {
-                        (Some(a), Some(b)) => a.schema == b.schema,
-                        _ => false,
-                    };
-                    if !same {
-                        ready.stats = None;
-                    }
-                    ready
-                }
-                _ => {
-                    let (prep_model, samples) = (Arc::clone(&model), Arc::clone(&samples));
-                    let limits = self.limits.clone();
-                    // Decoding and resizing images is CPU work: keep it off the async I/O
-                    // threads.
-                    tokio::task::spawn_blocking(move || {
-                        check_request(&prep_model, &samples, &limits)
-                    })
-                    .await
-                    .map_err(|e| {
-                        ServiceError::Internal(format!("preparation task failed: {e}"))
-                    })??
-                }
-            };
+            let ready = self.prepare(&model, &samples, prepared.take()).await?;
             match self.scheduler.submit(
                 Arc::clone(&model),
                 Arc::clone(&ready.inputs),

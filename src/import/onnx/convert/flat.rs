@@ -86,9 +86,9 @@ impl Converter {
                 step: *step,
                 offset: add_offsets(&ctx, offset, c)?,
             },
-            ("Unsqueeze", [Some(Val::Ramp { step, offset }), rest @ ..]) => Val::Ramp {
+            ("Unsqueeze", [Some(Val::Ramp { step, offset }), ..]) => Val::Ramp {
                 step: *step,
-                offset: self.unsqueeze_offsets(n, &ctx, offset, rest)?,
+                offset: self.unsqueeze_offsets(n, &ctx, offset, inputs)?,
             },
             ("Gather", [Some(Val::Flat { name, shape }), Some(indices)]) => {
                 if attr_int_checked(n, "axis")?.unwrap_or(0) != 0 {
@@ -112,16 +112,11 @@ impl Converter {
         n: &NodeProto,
         ctx: &Ctx<'_>,
         offset: &ConstTensor,
-        rest: &[Option<Val>],
+        inputs: &[Option<Val>],
     ) -> Result<ConstTensor, ImportError> {
-        let axes = if self.opset >= 13 {
-            match rest.first() {
-                Some(Some(Val::Const(t))) => t.to_i64(),
-                _ => return Err(ctx.not_constant(1)),
-            }
-        } else {
-            crate::import::onnx::attr::attr_ints_checked(n, "axes")?.unwrap_or_default()
-        };
+        let axes = self
+            .squeeze_axes(n, ctx, inputs)?
+            .ok_or_else(|| ctx.unsupported("Unsqueeze of a range over the batch needs axes"))?;
         let rank = offset.shape.len() + 1 + axes.len();
         let mut axes: Vec<usize> = axes
             .iter()

@@ -29,6 +29,20 @@ impl Converter {
         Ok((Op::Reshape { shape: per_sample }, shape, xn.clone()))
     }
 
+    /// The `axes` of Squeeze or Unsqueeze: input 1 from opset 13, the attribute before.
+    pub(super) fn squeeze_axes(
+        &self,
+        n: &NodeProto,
+        ctx: &Ctx<'_>,
+        inputs: &[Option<Val>],
+    ) -> Result<Option<Vec<i64>>, ImportError> {
+        if self.opset >= 13 {
+            Ok(ctx.constant(inputs, 1)?.map(|t| t.to_i64()))
+        } else {
+            attr_ints_checked(n, "axes")
+        }
+    }
+
     pub(super) fn squeeze(
         &mut self,
         n: &NodeProto,
@@ -36,15 +50,7 @@ impl Converter {
         inputs: &[Option<Val>],
     ) -> Result<Simple, ImportError> {
         let (xn, s) = ctx.first_dynamic(inputs)?;
-        let axes = if self.opset >= 13 {
-            match inputs.get(1) {
-                Some(Some(Val::Const(t))) => Some(t.to_i64()),
-                Some(Some(Val::Dyn { .. })) => return Err(ctx.not_constant(1)),
-                _ => None,
-            }
-        } else {
-            attr_ints_checked(n, "axes")?
-        };
+        let axes = self.squeeze_axes(n, ctx, inputs)?;
         let mut full: Vec<usize> = vec![0];
         full.extend_from_slice(s);
         let new_full: Vec<usize> = if n.op_type == "Squeeze" {

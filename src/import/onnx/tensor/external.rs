@@ -78,42 +78,12 @@ impl ExternalData {
         entries: &[StringStringEntryProto],
         expected_len: u64,
     ) -> Result<Vec<u8>, ImportError> {
-        let mut location = None;
-        let mut offset = None;
-        let mut length = None;
-        // Later entries win, as in the `onnx` package's `ExternalDataInfo`; unknown keys
-        // (such as `checksum`, a SHA-1 of the whole file) are ignored.
-        for e in entries {
-            match e.key.as_str() {
-                "location" => location = Some(e.value.as_str()),
-                "offset" => offset = Some(e.value.as_str()),
-                "length" => length = Some(e.value.as_str()),
-                _ => {}
-            }
-        }
-        let Some(location) = location else {
-            return Err(ImportError::Tensor {
-                tensor: tensor.to_string(),
-                problem: "is marked as external data but has no \"location\" entry".into(),
-            });
-        };
+        let (location, offset, length) = where_stored(tensor, entries)?;
         let err = |problem: String| ImportError::ExternalData {
             tensor: tensor.to_string(),
             location: location.to_string(),
             problem,
         };
-        let number = |key: &str, v: &str| {
-            v.parse::<u64>().map_err(|_| {
-                err(format!(
-                    "has {key} {v:?}, which is not a whole number of bytes"
-                ))
-            })
-        };
-        let offset = offset
-            .map(|v| number("offset", v))
-            .transpose()?
-            .unwrap_or(0);
-        let length = length.map(|v| number("length", v)).transpose()?;
         check_location(location).map_err(err)?;
 
         let mut state = self.state.borrow_mut();
@@ -196,6 +166,50 @@ impl ExternalData {
         *bytes_read = total;
         Ok(buf)
     }
+}
+
+/// The `location`, `offset` (0 when absent) and `length` entries of an external tensor.
+fn where_stored<'e>(
+    tensor: &str,
+    entries: &'e [StringStringEntryProto],
+) -> Result<(&'e str, u64, Option<u64>), ImportError> {
+    let mut location = None;
+    let mut offset = None;
+    let mut length = None;
+    // Later entries win, as in the `onnx` package's `ExternalDataInfo`; unknown keys
+    // (such as `checksum`, a SHA-1 of the whole file) are ignored.
+    for e in entries {
+        match e.key.as_str() {
+            "location" => location = Some(e.value.as_str()),
+            "offset" => offset = Some(e.value.as_str()),
+            "length" => length = Some(e.value.as_str()),
+            _ => {}
+        }
+    }
+    let Some(location) = location else {
+        return Err(ImportError::Tensor {
+            tensor: tensor.to_string(),
+            problem: "is marked as external data but has no \"location\" entry".into(),
+        });
+    };
+    let err = |problem: String| ImportError::ExternalData {
+        tensor: tensor.to_string(),
+        location: location.to_string(),
+        problem,
+    };
+    let number = |key: &str, v: &str| {
+        v.parse::<u64>().map_err(|_| {
+            err(format!(
+                "has {key} {v:?}, which is not a whole number of bytes"
+            ))
+        })
+    };
+    let offset = offset
+        .map(|v| number("offset", v))
+        .transpose()?
+        .unwrap_or(0);
+    let length = length.map(|v| number("length", v)).transpose()?;
+    Ok((location, offset, length))
 }
 
 /// Refuses a `location` that could leave the model folder by its spelling.
