@@ -192,15 +192,31 @@ fn batch_invariance_is_bitwise() {
                 .run(&case.input, case.batch, RunOptions::default())
                 .unwrap();
             let per = whole.len() / case.batch;
-            // Each sample alone.
+            // Each sample alone, on 1 thread, and on 2 and 3 (every step spread over them).
             for s in 0..case.batch {
-                let alone = e1
-                    .run(&case.input[s * n_in..][..n_in], 1, RunOptions::default())
+                for e in [&e1, &e2, &e3] {
+                    let alone = e
+                        .run(&case.input[s * n_in..][..n_in], 1, RunOptions::default())
+                        .unwrap();
+                    assert_eq!(
+                        bits(&alone),
+                        bits(&whole[s * per..][..per]),
+                        "case {} on {} with {} threads: sample {s} alone vs in batch",
+                        case.name,
+                        isa.name(),
+                        e.threads()
+                    );
+                }
+            }
+            // Two samples on three threads: a batch smaller than the team.
+            if case.batch >= 2 {
+                let two = e3
+                    .run(&case.input[..2 * n_in], 2, RunOptions::default())
                     .unwrap();
                 assert_eq!(
-                    bits(&alone),
-                    bits(&whole[s * per..][..per]),
-                    "case {} on {}: sample {s} alone vs in batch",
+                    bits(&two),
+                    bits(&whole[..2 * per]),
+                    "case {} on {}: two samples on three threads",
                     case.name,
                     isa.name()
                 );

@@ -8,23 +8,21 @@
 //! - this file: [`Engine`], which owns a plan, checks inputs, splits a batch over threads and
 //!   replays a bundle's check samples.
 //!
-//! Threads: a batch is split into contiguous runs of samples, one per thread, each run in its
-//! own workspace. Samples never interact, so results are bitwise the same for any split, and
-//! no synchronisation happens inside a batch. The calling thread computes the first run; the
-//! others go to helper threads the engine starts on its first split batch and keeps until it
-//! is dropped (`Helpers`), so a batch costs a wake-up per helper rather than a thread start.
-//! A batch of one sample (or an engine of one thread) never leaves the calling thread.
+//! Threads: an engine of more than one thread starts a pool of that many on its first batch
+//! and keeps it until dropped, so a batch costs wake-ups rather than thread starts. A batch of
+//! at least as many samples as threads is split into contiguous runs of samples, one per
+//! thread, each in its own workspace: samples never interact, so nothing synchronises inside
+//! the batch, and the calling thread computes the first run. A smaller batch (one image, most
+//! often) runs on the pool as one pass whose convolutions are each spread over all threads
+//! (see [`run`]). Either way, results are bitwise the same for any thread count.
 
 pub mod kernels;
 pub mod plan;
 pub mod run;
 
-use std::any::Any;
-use std::panic::{AssertUnwindSafe, catch_unwind, resume_unwind};
-use std::sync::mpsc::{self, Sender};
-use std::sync::{Arc, Condvar, Mutex, TryLockError};
-use std::thread::JoinHandle;
+use std::sync::{Mutex, OnceLock};
 
+use rayon_core::{ThreadPool, ThreadPoolBuilder};
 use thiserror::Error;
 
 use crate::bundle::{Bundle, CHECK_TOLERANCE};
@@ -101,10 +99,10 @@ pub struct Engine {
     /// Idle workspaces; a std `Mutex` because it is held for a push or pop only, never across
     /// an await or a kernel.
     workspaces: Mutex<Vec<Workspace>>,
-    /// Helper threads for split batches, started by the first one. The lock is held for a
-    /// whole batch: a second caller splitting a batch at the same time finds it taken and
-    /// starts scoped threads of its own instead of waiting.
-    helpers: Mutex<Option<Helpers>>,
+    /// The threads of batches that use more than one, started by the first such batch;
+    /// `None` inside if the OS refused them (batches then run on the calling thread). Callers
+    /// running batches at the same time share it: their parts queue for its threads.
+    pool: OnceLock<Option<ThreadPool>>,
 }
 
 /// Result of replaying a bundle's check samples.
@@ -142,7 +140,7 @@ impl Engine {
             threads: config.threads,
             max_batch: config.max_batch,
             workspaces: Mutex::new(Vec::new()),
-            helpers: Mutex::new(None),
+            pool: OnceLock::new(),
         })
     }
 
@@ -164,6 +162,35 @@ impl Engine {
     fn give_workspace(&self, ws: Workspace) {
         let mut pool = self.workspaces.lock().unwrap_or_else(|p| p.into_inner());
         pool.push(ws);
+    }
+
+    /// The engine's threads, started on first use; `None` for an engine of one thread, or
+    /// when the OS would not start them.
+    fn pool(&self) -> Option<&ThreadPool> {
+        if self.threads == 1 {
+            return None;
+        }
+        self.pool
+            .get_or_init(|| {
+                let built = ThreadPoolBuilder::new()
+                    .num_threads(self.threads)
+                    .thread_name(|i| format!("convoy-engine-{i}"))
+                    .build();
+                built
+                    .inspect_err(|e| {
+                        tracing::warn!(error = %e, "could not start the engine's threads; \
+                            batches run on the calling thread");
+                    })
+                    .ok()
+            })
+            .as_ref()
+    }
+
+    /// `batch` samples in one workspace, each step spread over `team`.
+    fn run_pass(&self, input: &[f32], batch: usize, output: &mut [f32], team: run::Team<'_>) {
+        let mut ws = self.take_workspace();
+        self.plan.run_unchecked(input, batch, &mut ws, output, team);
+        self.give_workspace(ws);
     }
 
     /// Runs `batch` samples (row-major, back to back) and returns the outputs, back to back.
@@ -226,14 +253,17 @@ impl Engine {
                 index: i % in_len,
             });
         }
-        let parts = self.threads.min(batch);
-        if parts == 1 {
-            let mut ws = self.take_workspace();
-            self.plan.run_unchecked(input, batch, &mut ws, output);
-            self.give_workspace(ws);
+        let Some(pool) = self.pool() else {
+            self.run_pass(input, batch, output, None);
+            return Ok(());
+        };
+        if batch < self.threads {
+            // Too few samples to go round: every thread works on every step.
+            pool.install(|| self.run_pass(input, batch, output, Some(pool)));
             return Ok(());
         }
         // Contiguous runs of samples, the first ones one sample longer when it does not divide.
+        let parts = self.threads;
         let base = batch / parts;
         let extra = batch % parts;
         let mut runs = Vec::with_capacity(parts);
@@ -247,33 +277,15 @@ impl Engine {
             rest_out = ro;
             runs.push((i, o, n));
         }
-        let run = |(i, o, n): (&[f32], &mut [f32], usize)| {
-            let mut ws = self.take_workspace();
-            self.plan.run_unchecked(i, n, &mut ws, o);
-            self.give_workspace(ws);
-        };
         let mut runs = runs.into_iter();
         // `parts >= 2`, so there is a first run.
-        let mine = runs.next().expect("at least two runs");
-        let helpers = match self.helpers.try_lock() {
-            Ok(guard) => Some(guard),
-            // A panic inside a batch poisons the lock; the helpers survive it (they catch
-            // their tasks' panics), so the set is still usable.
-            Err(TryLockError::Poisoned(p)) => Some(p.into_inner()),
-            Err(TryLockError::WouldBlock) => None,
-        };
-        match helpers {
-            Some(mut slot) => {
-                let helpers = slot.get_or_insert_with(|| Helpers::start(self.threads - 1));
-                helpers.run_scoped(runs.map(|r| move || run(r)), || run(mine));
+        let (i, o, n) = runs.next().expect("at least two runs");
+        pool.in_place_scope(|scope| {
+            for (i, o, n) in runs {
+                scope.spawn(move |_| self.run_pass(i, n, o, None));
             }
-            None => std::thread::scope(|scope| {
-                for r in runs {
-                    scope.spawn(move || run(r));
-                }
-                run(mine);
-            }),
-        }
+            self.run_pass(i, n, o, None);
+        });
         Ok(())
     }
 
@@ -313,230 +325,4 @@ pub fn tolerance_check(got: &[f32], want: &[f32]) -> (f32, f32) {
         };
     }
     (err, CHECK_TOLERANCE * scale)
-}
-
-/// A task as a helper thread receives it: lifetime-erased by [`Helpers::run_scoped`], which
-/// does not return before the task has finished.
-type Task = Box<dyn FnOnce() + Send + 'static>;
-
-/// Long-lived threads that run the later runs of a split batch; the caller runs the first.
-/// Each helper has its own queue, so a batch of `k` runs wakes exactly `k - 1` of them.
-struct Helpers {
-    queues: Vec<Sender<Task>>,
-    threads: Vec<JoinHandle<()>>,
-}
-
-impl Helpers {
-    /// Starts up to `n` helpers. A thread the OS refuses is simply missing: its runs then
-    /// execute on the calling thread.
-    fn start(n: usize) -> Helpers {
-        let mut queues = Vec::with_capacity(n);
-        let mut threads = Vec::with_capacity(n);
-        for i in 0..n {
-            let (tx, rx) = mpsc::channel::<Task>();
-            let spawned = std::thread::Builder::new()
-                .name(format!("convoy-engine-{}", i + 1))
-                .spawn(move || {
-                    // Ends when the engine drops the sending side.
-                    while let Ok(task) = rx.recv() {
-                        task();
-                    }
-                });
-            match spawned {
-                Ok(handle) => {
-                    queues.push(tx);
-                    threads.push(handle);
-                }
-                Err(e) => {
-                    tracing::warn!(error = %e, "could not start an engine helper thread");
-                    break;
-                }
-            }
-        }
-        Helpers { queues, threads }
-    }
-
-    /// Runs each of `tasks` on a helper (the i-th on the i-th helper, the ones beyond the
-    /// helpers on this thread) and `mine` on this thread; returns when all have finished.
-    /// A panic in any of them is re-raised here once all have finished, as
-    /// `std::thread::scope` would.
-    fn run_scoped<'a, F: FnOnce() + Send + 'a>(
-        &self,
-        tasks: impl Iterator<Item = F>,
-        mine: impl FnOnce(),
-    ) {
-        let latch = Arc::new(Latch::default());
-        // Waits for the helpers' tasks on every way out of this function, unwinding included:
-        // they borrow from the caller's frame.
-        let wait = WaitFor(&latch);
-        let mut inline = Vec::new();
-        let mut queues = self.queues.iter();
-        for task in tasks {
-            let Some(queue) = queues.next() else {
-                inline.push(task);
-                continue;
-            };
-            latch.add();
-            let done = Arc::clone(&latch);
-            let wrapped: Box<dyn FnOnce() + Send + 'a> = Box::new(move || {
-                let result = catch_unwind(AssertUnwindSafe(task));
-                done.finish(result.err());
-            });
-            // SAFETY: the task borrows data that lives for 'a, which outlasts this call; the
-            // task finishes before this call returns or unwinds, because `wait` blocks until
-            // the latch has counted every task added to it, and every such task counts itself
-            // down when it ends (panics are caught above). Only the lifetime changes; the
-            // type is otherwise the same.
-            let erased: Task =
-                unsafe { std::mem::transmute::<Box<dyn FnOnce() + Send + 'a>, Task>(wrapped) };
-            if let Err(mpsc::SendError(task)) = queue.send(erased) {
-                // The helper is gone (it cannot be, short of the process ending); run here.
-                task();
-            }
-        }
-        let mine = catch_unwind(AssertUnwindSafe(|| {
-            mine();
-            for task in inline {
-                task();
-            }
-        }));
-        drop(wait);
-        if let Err(payload) = mine {
-            resume_unwind(payload);
-        }
-        if let Some(payload) = latch.take_panic() {
-            resume_unwind(payload);
-        }
-    }
-}
-
-impl Drop for Helpers {
-    fn drop(&mut self) {
-        // Closing the queues ends the helpers' loops.
-        self.queues.clear();
-        for t in self.threads.drain(..) {
-            // A helper never panics (tasks' panics are caught), so join cannot fail.
-            let _ = t.join();
-        }
-    }
-}
-
-/// Counts a batch's unfinished helper tasks and keeps the first panic among them.
-#[derive(Default)]
-struct Latch {
-    state: Mutex<LatchState>,
-    done: Condvar,
-}
-
-#[derive(Default)]
-struct LatchState {
-    pending: usize,
-    panic: Option<Box<dyn Any + Send>>,
-}
-
-impl Latch {
-    fn lock(&self) -> std::sync::MutexGuard<'_, LatchState> {
-        // Nothing panics while holding this lock; a poisoned one still holds a valid count.
-        self.state.lock().unwrap_or_else(|p| p.into_inner())
-    }
-
-    fn add(&self) {
-        self.lock().pending += 1;
-    }
-
-    fn finish(&self, panic: Option<Box<dyn Any + Send>>) {
-        let mut state = self.lock();
-        state.pending -= 1;
-        if state.panic.is_none() {
-            state.panic = panic;
-        }
-        if state.pending == 0 {
-            self.done.notify_all();
-        }
-    }
-
-    fn wait(&self) {
-        let mut state = self.lock();
-        while state.pending > 0 {
-            state = self.done.wait(state).unwrap_or_else(|p| p.into_inner());
-        }
-    }
-
-    fn take_panic(&self) -> Option<Box<dyn Any + Send>> {
-        self.lock().panic.take()
-    }
-}
-
-/// Waits for a latch when dropped.
-struct WaitFor<'l>(&'l Latch);
-
-impl Drop for WaitFor<'_> {
-    fn drop(&mut self) {
-        self.0.wait();
-    }
-}
-
-#[cfg(test)]
-mod tests {
-    use super::*;
-    use std::sync::atomic::{AtomicUsize, Ordering};
-
-    /// The contract of `std::thread::scope`, which the helpers replace: every task runs once,
-    /// borrowed data is usable, and a task's panic reaches the caller after all have ended.
-    #[test]
-    fn helpers_run_every_task_and_pass_panics_on() {
-        let helpers = Helpers::start(2);
-        let hits: Vec<AtomicUsize> = (0..4).map(|_| AtomicUsize::new(0)).collect();
-        for _ in 0..3 {
-            // Three tasks for two helpers: the third runs on this thread.
-            helpers.run_scoped(
-                (1..4).map(|i| {
-                    let hits = &hits;
-                    move || {
-                        hits[i].fetch_add(1, Ordering::SeqCst);
-                    }
-                }),
-                || {
-                    hits[0].fetch_add(1, Ordering::SeqCst);
-                },
-            );
-        }
-        let counts: Vec<usize> = hits.iter().map(|h| h.load(Ordering::SeqCst)).collect();
-        assert_eq!(counts, [3, 3, 3, 3]);
-
-        let finished = AtomicUsize::new(0);
-        let caught = catch_unwind(AssertUnwindSafe(|| {
-            helpers.run_scoped(
-                [
-                    Box::new(|| {
-                        if finished.load(Ordering::SeqCst) < 10 {
-                            panic!("boom");
-                        }
-                    }) as Box<dyn FnOnce() + Send>,
-                    Box::new(|| {
-                        std::thread::sleep(std::time::Duration::from_millis(20));
-                        finished.fetch_add(1, Ordering::SeqCst);
-                    }),
-                ]
-                .into_iter(),
-                || {},
-            )
-        }));
-        let payload = caught.expect_err("the helper's panic is re-raised");
-        assert_eq!(payload.downcast_ref::<&str>(), Some(&"boom"));
-        assert_eq!(
-            finished.load(Ordering::SeqCst),
-            1,
-            "re-raised after all ended"
-        );
-
-        // The helpers survive a task's panic.
-        helpers.run_scoped(
-            std::iter::once(|| {
-                hits[1].fetch_add(1, Ordering::SeqCst);
-            }),
-            || {},
-        );
-        assert_eq!(hits[1].load(Ordering::SeqCst), 4);
-    }
 }

@@ -4,21 +4,34 @@
 //! GEMM computes column by column in a fixed order), so a sample's result never depends on
 //! the batch it rides in.
 //!
+//! Threads: a pass may be given a thread pool ([`Team`]); each convolution of a sample is then
+//! spread over the pool's threads, by output columns, channels (depthwise) or groups. Every
+//! output element is computed by the same kernel sequence whichever part it falls in (see
+//! `kernels::gemm`), so the results do not depend on the thread count. The other steps are
+//! cheap next to the convolutions and run on the thread that runs the pass.
+//!
 //! Memory: a batch goes through the plan in slices of at most [`Plan::slice_samples`] samples,
 //! so a workspace holds the activations of one slice, not of the whole batch. Batch invariance
 //! makes the slicing invisible in the results.
 
-use super::kernels::gemm::{BSource, Epilogue, GemmScratch, PackedWeights, gemm};
+use std::ops::Range;
+
+use rayon_core::ThreadPool;
+
+use super::kernels::gemm::{
+    BSource, ColumnBand, Epilogue, GemmScratch, PackedWeights, gemm, gemm_band,
+};
 use super::kernels::simd::Machine;
 use super::kernels::{depthwise, elementwise, layout, norm, pool, vmath};
 use super::plan::{ConvKind, ConvStep, Plan, StepKind};
 
 /// Buffers for one slice of a batch at a time (see [`Plan::slice_samples`]); grow-only, so a
-/// steady load allocates nothing.
+/// steady load allocates nothing but the few bytes that describe a spread step's parts.
 #[derive(Default)]
 pub struct Workspace {
     buffers: Vec<Vec<f32>>,
-    gemm: GemmScratch,
+    /// One per part a step is spread over (one without a [`Team`]).
+    gemm: Vec<GemmScratch>,
     dense: Vec<f32>,
     /// Sums of layer norms and reductions.
     sums: Vec<f64>,
@@ -29,7 +42,10 @@ impl Workspace {
         Workspace::default()
     }
 
-    fn prepare(&mut self, plan: &Plan, batch: usize) {
+    fn prepare(&mut self, plan: &Plan, batch: usize, parts: usize) {
+        if self.gemm.len() < parts {
+            self.gemm.resize_with(parts, GemmScratch::default);
+        }
         if self.buffers.len() < plan.buffer_len.len() {
             self.buffers.resize_with(plan.buffer_len.len(), Vec::new);
         }
@@ -52,6 +68,14 @@ impl Workspace {
 /// (matrix-vector dense layers) and none at 32; ResNet-20 was flat.
 const WORKSPACE_FLOATS: usize = 1 << 20;
 
+/// The threads one pass may spread a step over: the pool's, from inside the pool (the engine
+/// runs such a pass with `ThreadPool::install`). `None`: the calling thread alone.
+pub(crate) type Team<'p> = Option<&'p ThreadPool>;
+
+fn team_parts(team: Team<'_>) -> usize {
+    team.map_or(1, ThreadPool::current_num_threads)
+}
+
 impl Plan {
     /// Samples one pass through the plan handles at most: as many as fit the workspace
     /// budget, at least one.
@@ -68,8 +92,9 @@ impl Plan {
         batch: usize,
         ws: &mut Workspace,
         output: &mut [f32],
+        team: Team<'_>,
     ) {
-        self.run_in_slices(input, batch, ws, output, self.slice_samples());
+        self.run_in_slices(input, batch, ws, output, self.slice_samples(), team);
     }
 
     /// [`Plan::run_unchecked`] with the slice size given (tests force small ones).
@@ -80,9 +105,10 @@ impl Plan {
         ws: &mut Workspace,
         output: &mut [f32],
         slice: usize,
+        team: Team<'_>,
     ) {
         if batch <= slice {
-            return self.run_slice(input, batch, ws, output);
+            return self.run_slice(input, batch, ws, output, team);
         }
         let in_len = self.value_len[self.input];
         let out_len = self.value_len[self.output];
@@ -94,20 +120,28 @@ impl Plan {
                 n,
                 ws,
                 &mut output[start * out_len..(start + n) * out_len],
+                team,
             );
             start += n;
         }
     }
 
     /// One pass of at most `slice_samples` samples.
-    fn run_slice(&self, input: &[f32], batch: usize, ws: &mut Workspace, output: &mut [f32]) {
-        ws.prepare(self, batch);
+    fn run_slice(
+        &self,
+        input: &[f32],
+        batch: usize,
+        ws: &mut Workspace,
+        output: &mut [f32],
+        team: Team<'_>,
+    ) {
+        ws.prepare(self, batch, team_parts(team));
         let in_len = self.value_len[self.input];
         ws.buffers[self.value_buffer[self.input]][..in_len * batch].copy_from_slice(input);
         for step in &self.steps {
             let out_buf = self.value_buffer[step.output];
             let mut out = std::mem::take(&mut ws.buffers[out_buf]);
-            self.run_step(step, batch, ws, &mut out);
+            self.run_step(step, batch, ws, &mut out, team);
             ws.buffers[out_buf] = out;
         }
         let out_len = self.value_len[self.output];
@@ -126,16 +160,18 @@ impl Plan {
         batch: usize,
         ws: &mut Workspace,
         out: &mut [f32],
+        team: Team<'_>,
     ) {
         let out_len = self.value_len[step.output];
         let in_len = self.value_len[step.inputs[0]];
         let out = &mut out[..out_len * batch];
         let Workspace {
             buffers,
-            gemm: scratch,
+            gemm: scratches,
             dense: tmp,
             sums,
         } = ws;
+        let scratches = &mut scratches[..team_parts(team)];
         let buffers = buffers.as_slice();
         let input = self.value(buffers, step.inputs[0], batch);
         match &step.kind {
@@ -147,7 +183,7 @@ impl Plan {
                         &input[s * in_len..][..in_len],
                         residual.map(|r| &r[s * out_len..][..out_len]),
                         &mut out[s * out_len..][..out_len],
-                        scratch,
+                        (scratches, team),
                     );
                 }
             }
@@ -162,7 +198,7 @@ impl Plan {
                     residual: None,
                     act: *act,
                 };
-                dense(weights, &epi, *features, input, out, tmp, scratch);
+                dense(weights, &epi, *features, input, out, tmp, &mut scratches[0]);
             }
             StepKind::Binary {
                 kind,
@@ -301,60 +337,181 @@ fn per_sample(kind: &StepKind, input: &[f32], out: &mut [f32], sums: &mut Vec<f6
     }
 }
 
-/// One sample through one convolution.
+/// One sample through one convolution, spread over the team's threads (one part per
+/// scratch).
 fn run_conv(
     conv: &ConvStep,
     input: &[f32],
     residual: Option<&[f32]>,
     out: &mut [f32],
-    scratch: &mut GemmScratch,
+    (scratches, team): (&mut [GemmScratch], Team<'_>),
 ) {
     let g = &conv.geom;
     let n = g.out_h * g.out_w;
+    let parts = scratches.len();
     match &conv.kind {
         ConvKind::Depthwise(w) => {
-            let epi = Epilogue {
-                bias: conv.bias.as_deref(),
-                residual,
-                act: conv.act,
-            };
-            depthwise::depthwise(w, g, input, out, 0..conv.out_c, &epi);
+            // Channels are independent planes: contiguous, disjoint parts of the output.
+            let chunks = planes(out, residual, n, &share(conv.out_c, parts, 1));
+            spread(team, chunks, scratches, |(channels, o, r), _| {
+                let epi = Epilogue {
+                    bias: conv.bias.as_deref(),
+                    residual: r,
+                    act: conv.act,
+                };
+                depthwise::depthwise(w, g, input, o, channels, &epi);
+            });
         }
         ConvKind::Gemm { groups, pointwise } => {
             let ocg = conv.out_c / conv.groups;
-            let icg = g.in_c / conv.groups;
-            let plane = g.in_h * g.in_w;
-            for (gi, weights) in groups.iter().enumerate() {
-                let rows = gi * ocg..(gi + 1) * ocg;
-                let epi = Epilogue {
-                    bias: conv.bias.as_deref().map(|b| &b[rows.clone()]),
-                    residual: residual.map(|r| &r[rows.start * n..rows.end * n]),
-                    act: conv.act,
-                };
-                let b = if *pointwise {
-                    BSource::Matrix {
-                        data: &input[gi * icg * plane..(gi + 1) * icg * plane],
-                        ld: plane,
+            let group = GroupGemm {
+                conv,
+                input,
+                residual,
+                pointwise: *pointwise,
+                n,
+                ocg,
+            };
+            if groups.len() >= parts && parts > 1 {
+                // Enough groups for every thread: each takes whole groups (contiguous rows).
+                let chunks = planes(out, None, ocg * n, &share(groups.len(), parts, 1));
+                spread(team, chunks, scratches, |(range, o, _), scratch| {
+                    for (i, gi) in range.clone().enumerate() {
+                        let c = ColumnBand::new(&mut o[i * ocg * n..][..ocg * n], ocg, n, 0..n);
+                        group.run(&groups[gi], gi, c, scratch);
                     }
-                } else {
-                    BSource::Im2col {
-                        input,
-                        geom: *g,
-                        c0: gi * icg,
-                    }
-                };
-                gemm(
-                    weights,
-                    &b,
-                    n,
-                    0..n,
-                    &mut out[rows.start * n..rows.end * n],
-                    n,
-                    &epi,
-                    scratch,
-                );
+                });
+            } else {
+                // Few groups (most often one): split each one's output columns.
+                let cols = share(n, parts, COLUMN_STEP);
+                for (gi, weights) in groups.iter().enumerate() {
+                    let o = &mut out[gi * ocg * n..(gi + 1) * ocg * n];
+                    let bands = ColumnBand::split(o, ocg, n, &cols);
+                    spread(team, bands, scratches, |c, scratch| {
+                        group.run(weights, gi, c, scratch);
+                    });
+                }
             }
         }
+    }
+}
+
+/// Column parts start at multiples of this: whole vectors for every instruction set's
+/// microkernel (8 lanes of AVX2; a multiple of NEON's 4; AVX-512's 16 lanes lose at most
+/// one partly filled vector per part).
+const COLUMN_STEP: usize = 8;
+
+/// One group of a convolution run as a GEMM.
+struct GroupGemm<'a> {
+    conv: &'a ConvStep,
+    input: &'a [f32],
+    residual: Option<&'a [f32]>,
+    pointwise: bool,
+    n: usize,
+    ocg: usize,
+}
+
+impl GroupGemm<'_> {
+    /// Group `gi` with `weights` into `c`, which covers the group's rows.
+    fn run(
+        &self,
+        weights: &PackedWeights,
+        gi: usize,
+        c: ColumnBand<'_>,
+        scratch: &mut GemmScratch,
+    ) {
+        let conv = self.conv;
+        let g = &conv.geom;
+        let (n, ocg) = (self.n, self.ocg);
+        let icg = g.in_c / conv.groups;
+        let plane = g.in_h * g.in_w;
+        let rows = gi * ocg..(gi + 1) * ocg;
+        let epi = Epilogue {
+            bias: conv.bias.as_deref().map(|b| &b[rows.clone()]),
+            residual: self.residual.map(|r| &r[rows.start * n..rows.end * n]),
+            act: conv.act,
+        };
+        let b = if self.pointwise {
+            BSource::Matrix {
+                data: &self.input[gi * icg * plane..(gi + 1) * icg * plane],
+                ld: plane,
+            }
+        } else {
+            BSource::Im2col {
+                input: self.input,
+                geom: *g,
+                c0: gi * icg,
+            }
+        };
+        gemm_band(weights, &b, n, c, &epi, scratch);
+    }
+}
+
+/// `0..len` cut into at most `parts` non-empty ranges of near-equal length, inner bounds at
+/// multiples of `step`.
+fn share(len: usize, parts: usize, step: usize) -> Vec<Range<usize>> {
+    let units = len.div_ceil(step);
+    let parts = parts.clamp(1, units.max(1));
+    let mut ranges = Vec::with_capacity(parts);
+    let mut start = 0;
+    for p in 1..=parts {
+        let end = (units * p / parts * step).min(len);
+        if end > start {
+            ranges.push(start..end);
+            start = end;
+        }
+    }
+    ranges
+}
+
+/// Units `.0` of a step's output (`.1`) and of its residual (`.2`).
+type Chunk<'a> = (Range<usize>, &'a mut [f32], Option<&'a [f32]>);
+
+/// The output (and residual) cut at `ranges` of units of `unit` floats each: contiguous,
+/// disjoint slices.
+fn planes<'a>(
+    out: &'a mut [f32],
+    residual: Option<&'a [f32]>,
+    unit: usize,
+    ranges: &[Range<usize>],
+) -> Vec<Chunk<'a>> {
+    let mut rest = out;
+    let mut taken = 0;
+    ranges
+        .iter()
+        .map(|r| {
+            let (o, tail) = std::mem::take(&mut rest).split_at_mut((r.end - taken) * unit);
+            let o = &mut o[(r.start - taken) * unit..];
+            rest = tail;
+            taken = r.end;
+            let res = residual.map(|x| &x[r.start * unit..r.end * unit]);
+            (r.clone(), o, res)
+        })
+        .collect()
+}
+
+/// Runs `f` on every part, each with its own scratch: the first on this thread, the others on
+/// the team's (or all here without one). Returns when all have finished.
+fn spread<T: Send>(
+    team: Team<'_>,
+    parts: Vec<T>,
+    scratches: &mut [GemmScratch],
+    f: impl Fn(T, &mut GemmScratch) + Sync,
+) {
+    assert!(parts.len() <= scratches.len(), "a part without a scratch");
+    let mut work = parts.into_iter().zip(scratches.iter_mut());
+    match team {
+        Some(pool) if work.len() > 1 => pool.scope(|scope| {
+            let first = work.next();
+            let f = &f;
+            for (part, scratch) in work {
+                scope.spawn(move |_| f(part, scratch));
+            }
+            if let Some((part, scratch)) = first {
+                f(part, scratch);
+            }
+        }),
+        _ => work.for_each(|(part, scratch)| f(part, scratch)),
     }
 }
 
@@ -441,7 +598,7 @@ mod tests {
         let x = SplitMix64::new(9).vec(batch * plan.input_len(), -1.0, 1.0);
         let run = |slice: usize| {
             let mut out = vec![0.0; batch * plan.output_len()];
-            plan.run_in_slices(&x, batch, &mut Workspace::new(), &mut out, slice);
+            plan.run_in_slices(&x, batch, &mut Workspace::new(), &mut out, slice, None);
             out.iter().map(|v| v.to_bits()).collect::<Vec<_>>()
         };
         let whole = run(batch);
@@ -452,5 +609,29 @@ mod tests {
             plan.slice_samples() >= batch,
             "a small net keeps its batch together"
         );
+    }
+
+    /// The parts a step is spread over cover its units exactly once, in order, with inner
+    /// bounds on the step; fewer parts when there are fewer units.
+    #[test]
+    fn shares_cover_every_unit_once() {
+        for len in [1, 7, 8, 49, 196, 3136, 12544] {
+            for parts in 1..=5 {
+                for step in [1, 8] {
+                    let ranges = share(len, parts, step);
+                    assert!(!ranges.is_empty() && ranges.len() <= parts);
+                    assert_eq!(ranges[0].start, 0);
+                    assert_eq!(ranges.last().map(|r| r.end), Some(len));
+                    for pair in ranges.windows(2) {
+                        assert_eq!(pair[0].end, pair[1].start);
+                        assert_eq!(pair[0].end % step, 0, "{len} {parts} {step}");
+                    }
+                    assert!(ranges.iter().all(|r| !r.is_empty()));
+                    let longest = ranges.iter().map(Range::len).max().unwrap_or(0);
+                    assert!(longest <= len.div_ceil(parts).next_multiple_of(step) + step);
+                }
+            }
+        }
+        assert_eq!(share(49, 2, 8), [0..24, 24..49]);
     }
 }

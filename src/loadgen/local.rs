@@ -4,6 +4,11 @@
 //!
 //! This is the ceiling a server can approach with that batch size and thread count: no
 //! network, no decoding, no queueing.
+//!
+//! How close the engine comes to the machine: each row's work rate (the network's
+//! multiply-adds, each counted as 2 floating-point operations, times images per second)
+//! against the single-core multiply-add peak measured right after (`engine::kernels::peak`),
+//! times the threads.
 
 use std::path::PathBuf;
 use std::time::{Duration, Instant};
@@ -15,6 +20,7 @@ use super::inputs::SplitMix64;
 use super::report::number;
 use super::{LoadgenError, MAX_DURATION};
 use crate::bundle::Bundle;
+use crate::engine::kernels::peak::fma_peak;
 use crate::engine::{Engine, EngineConfig, RunOptions};
 
 /// Batch sizes measured when none are given.
@@ -26,6 +32,8 @@ pub const MAX_BATCH_SIZES: usize = 32;
 /// Longest warm-up per batch size; at least one batch always runs first, so the workspace has
 /// grown to the batch before timing starts.
 const MAX_WARMUP: Duration = Duration::from_millis(500);
+/// How long the multiply-add peak is measured (its fastest sixteenth counts).
+const PEAK_TIME: Duration = Duration::from_millis(400);
 
 /// What to measure.
 #[derive(Clone, Debug)]
@@ -48,6 +56,10 @@ pub struct LocalResult {
     pub images_per_s: f64,
     /// Median time of one batch, within the histogram's relative error.
     pub ms_per_batch_p50: f64,
+    /// Billions of floating-point operations per second in convolutions and dense layers.
+    pub gflops: f64,
+    /// `gflops` over the measured peak of all the engine's threads (one core's × threads).
+    pub of_fma_peak: f64,
 }
 
 /// Field names are the JSON keys.
@@ -70,6 +82,11 @@ pub struct LocalReport {
     /// Peak resident memory of the whole process at the end, in MiB (Linux only): run one batch
     /// size at a time to attribute it.
     pub peak_rss_mb: Option<f64>,
+    /// Multiply-adds of one image in convolutions and dense layers (as `convoy inspect`).
+    pub multiply_adds_per_image: u64,
+    /// The single-core multiply-add peak of the engine's instruction set, measured after the
+    /// batches, in billions of floating-point operations per second.
+    pub fma_peak_gflops: f64,
 }
 
 impl LocalConfig {
@@ -120,6 +137,7 @@ pub fn run_local(
         },
     )?;
     let load_ms = loading.elapsed().as_secs_f64() * 1e3;
+    let multiply_adds = bundle.summary().multiply_adds;
     let (in_len, out_len) = (engine.plan().input_len(), engine.plan().output_len());
     let largest = config.batches.iter().copied().max().unwrap_or(1);
     let mut rng = SplitMix64(config.seed);
@@ -154,13 +172,20 @@ pub fn run_local(
             last = now;
         }
         let elapsed = (last - start).as_secs_f64();
+        let images_per_s = (times.len() * batch as u64) as f64 / elapsed;
         results.push(LocalResult {
             batch,
             runs: times.len(),
-            images_per_s: (times.len() * batch as u64) as f64 / elapsed,
+            images_per_s,
             // At least one batch ran (the loop body runs before the duration can pass).
             ms_per_batch_p50: times.quantile_ppm(500_000).unwrap_or(0) as f64 / 1e6,
+            gflops: 2.0 * multiply_adds as f64 * images_per_s / 1e9,
+            of_fma_peak: 0.0,
         });
+    }
+    let peak = fma_peak(engine.plan().isa(), PEAK_TIME).gflops;
+    for r in &mut results {
+        r.of_fma_peak = r.gflops / (peak * config.threads as f64);
     }
     let best = results
         .iter()
@@ -180,6 +205,8 @@ pub fn run_local(
         best_batch: best.1,
         load_ms,
         peak_rss_mb: peak_rss_mb(),
+        multiply_adds_per_image: multiply_adds,
+        fma_peak_gflops: peak,
     })
 }
 
@@ -216,18 +243,20 @@ impl LocalReport {
         let _ = writeln!(s);
         let _ = writeln!(
             s,
-            "{:>6}  {:>12}  {:>16}  {:>10}  {:>8}",
-            "batch", "images/s", "ms/batch (p50)", "ms/image", "batches"
+            "{:>6}  {:>12}  {:>16}  {:>10}  {:>8}  {:>9}  {:>8}",
+            "batch", "images/s", "ms/batch (p50)", "ms/image", "batches", "GFLOP/s", "of peak"
         );
         for r in &self.results {
             let _ = writeln!(
                 s,
-                "{:>6}  {:>12}  {:>16}  {:>10}  {:>8}",
+                "{:>6}  {:>12}  {:>16}  {:>10}  {:>8}  {:>9}  {:>7.1}%",
                 r.batch,
                 number(r.images_per_s),
                 number(r.ms_per_batch_p50),
                 number(r.ms_per_batch_p50 / r.batch as f64),
-                r.runs
+                r.runs,
+                number(r.gflops),
+                100.0 * r.of_fma_peak
             );
         }
         let _ = writeln!(
@@ -235,6 +264,14 @@ impl LocalReport {
             "\nbest: {} images/s at batch {}",
             number(self.best_images_per_s),
             self.best_batch
+        );
+        let _ = writeln!(
+            s,
+            "work: {} multiply-adds per image (2 FLOPs each); peak: {} GFLOP/s on one core \
+             ({}), measured after the batches; of peak = GFLOP/s / (peak x threads)",
+            number(self.multiply_adds_per_image as f64),
+            number(self.fma_peak_gflops),
+            self.isa
         );
         let _ = write!(s, "load (read, verify, plan): {} ms", number(self.load_ms));
         if let Some(mb) = self.peak_rss_mb {

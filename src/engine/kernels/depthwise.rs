@@ -78,9 +78,10 @@ impl PackedDepthwise {
 /// One sample: `input` `[in_c, in_h, in_w]` -> `output` `[in_c*mult, out_h, out_w]`; output
 /// channel `o` reads input channel `o / mult`. Only output channels in `channels` are written.
 ///
-/// Indexing is absolute: `output`, `epi.residual` (same layout as `output`) and `epi.bias`
-/// (one per output channel) are indexed by the output channel number, not relative to
-/// `channels.start`.
+/// `output` holds the planes of `channels` only (its first float is the first of channel
+/// `channels.start`), and so does `epi.residual`: disjoint channel ranges of one output are
+/// disjoint slices, which different threads may fill. `epi.bias` has one value per output
+/// channel, indexed by the channel number.
 ///
 /// # Panics
 /// If the shapes disagree or the slices are too short (the caller validates shapes first).
@@ -113,7 +114,7 @@ pub fn depthwise(
         return;
     }
     let plane_out = g.out_h * g.out_w;
-    let need_out = channels.end * plane_out;
+    let need_out = channels.len() * plane_out;
     assert!(
         input.len() >= g.in_c * g.in_h * g.in_w,
         "input shorter than its shape"
@@ -244,8 +245,8 @@ struct Plane<'a> {
 /// The one generic body, inlined into each instruction set's wrapper.
 ///
 /// # Safety
-/// `job.out` (and `job.residual` if not null) must be valid for every element of the
-/// channels in `job.channels`; the input holds `in_c` planes.
+/// `job.out` (and `job.residual` if not null) must be valid for the planes of the channels in
+/// `job.channels`, counted from `job.channels.start`; the input holds `in_c` planes.
 #[inline(always)]
 unsafe fn run<S: Simd>(s: S, job: &Job<'_>) {
     let g = job.g;
@@ -257,7 +258,7 @@ unsafe fn run<S: Simd>(s: S, job: &Job<'_>) {
     let tiling = tiling(g, S::LANES);
     let mut windows = [0.0f32; WINDOWS];
     for o in job.channels.clone() {
-        let offset = o * plane_out;
+        let offset = (o - job.channels.start) * plane_out;
         let plane = Plane {
             input: &job.input[(o / mult) * plane_in..][..plane_in],
             taps: &w.w[o * taps_len..][..taps_len],

@@ -26,6 +26,7 @@ mod pack;
 mod tests;
 
 use std::fmt;
+use std::marker::PhantomData;
 use std::ops::Range;
 
 use super::activation::Activation;
@@ -326,6 +327,85 @@ fn block_cols(k: usize, nr: usize) -> usize {
     (shape::B_BLOCK_FLOATS / k.max(1) / nr).max(1) * nr
 }
 
+/// Columns `cols` of every row of a row-major matrix with row stride `ldc`, borrowed
+/// mutably: what one [`gemm_band`] call writes. Bands split from one matrix
+/// ([`ColumnBand::split`]) are disjoint, so different threads may fill them at once.
+pub struct ColumnBand<'a> {
+    ptr: *mut f32,
+    rows: usize,
+    ldc: usize,
+    cols: Range<usize>,
+    _borrow: PhantomData<&'a mut [f32]>,
+}
+
+// SAFETY: a band stands for `&mut` access to its own elements only (disjoint from every other
+// band of the matrix), and `&mut [f32]` is `Send`.
+unsafe impl Send for ColumnBand<'_> {}
+
+impl<'a> ColumnBand<'a> {
+    /// Columns `cols` of all `rows` rows of `c`.
+    ///
+    /// # Panics
+    /// If `c` is too short for them or `cols` does not fit in `ldc`.
+    pub fn new(c: &'a mut [f32], rows: usize, ldc: usize, cols: Range<usize>) -> ColumnBand<'a> {
+        Self::check(c.len(), rows, ldc, &cols);
+        ColumnBand {
+            ptr: c.as_mut_ptr(),
+            rows,
+            ldc,
+            cols,
+            _borrow: PhantomData,
+        }
+    }
+
+    /// One band per range of `parts` (ascending, non-overlapping column ranges).
+    ///
+    /// # Panics
+    /// If the ranges overlap, descend, or do not fit `c` (as [`ColumnBand::new`]).
+    pub fn split(
+        c: &'a mut [f32],
+        rows: usize,
+        ldc: usize,
+        parts: &[Range<usize>],
+    ) -> Vec<ColumnBand<'a>> {
+        let mut end = 0;
+        for r in parts {
+            assert!(
+                r.start >= end,
+                "column ranges overlap or descend: {parts:?}"
+            );
+            Self::check(c.len(), rows, ldc, r);
+            end = r.end;
+        }
+        let ptr = c.as_mut_ptr();
+        parts
+            .iter()
+            .map(|r| ColumnBand {
+                ptr,
+                rows,
+                ldc,
+                cols: r.clone(),
+                _borrow: PhantomData,
+            })
+            .collect()
+    }
+
+    fn check(len: usize, rows: usize, ldc: usize, cols: &Range<usize>) {
+        assert!(
+            cols.start <= cols.end && cols.end <= ldc,
+            "columns {cols:?} outside a row of {ldc}"
+        );
+        if rows > 0 && !cols.is_empty() {
+            let need = (rows - 1) * ldc + cols.end;
+            assert!(len >= need, "C has {len} floats, needs {need}");
+        }
+    }
+
+    pub fn cols(&self) -> Range<usize> {
+        self.cols.clone()
+    }
+}
+
 /// Computes `C[m][n]` for all `m` in `0..M` and `n` in `cols` (a sub-range of `0..n_total`):
 /// `C[m*ldc + n] = act(Σ_k A[m][k]·B[k][n] + bias[m] + residual[m*ldc + n])`.
 ///
@@ -345,7 +425,27 @@ pub fn gemm(
     epi: &Epilogue<'_>,
     scratch: &mut GemmScratch,
 ) {
+    let band = ColumnBand::new(c, a.m, ldc, cols);
+    gemm_band(a, b, n_total, band, epi, scratch);
+}
+
+/// [`gemm`] into one band of C: the columns `c.cols()` (a sub-range of `0..n_total`) of every
+/// row. Bands of one C computed apart hold the same bits as one call over all columns.
+///
+/// # Panics
+/// If the band's rows are not the weights' rows, or the operands are too short for the
+/// shapes (the caller validates shapes first).
+pub fn gemm_band(
+    a: &PackedWeights,
+    b: &BSource<'_>,
+    n_total: usize,
+    c: ColumnBand<'_>,
+    epi: &Epilogue<'_>,
+    scratch: &mut GemmScratch,
+) {
     let (m, k) = (a.m, a.k);
+    let cols = c.cols.clone();
+    let ldc = c.ldc;
     assert!(
         cols.start <= cols.end && cols.end <= n_total,
         "columns {cols:?} outside 0..{n_total}"
@@ -353,9 +453,8 @@ pub fn gemm(
     if m == 0 || cols.is_empty() {
         return;
     }
-    assert!(ldc >= cols.end, "ldc {ldc} < last column {}", cols.end);
+    assert_eq!(c.rows, m, "the band's rows are not the weights' rows");
     let c_len = (m - 1) * ldc + cols.end;
-    assert!(c.len() >= c_len, "C has {} floats, needs {c_len}", c.len());
     if let Some(r) = epi.residual {
         assert!(
             r.len() >= c_len,
@@ -369,7 +468,7 @@ pub fn gemm(
     check_b(b, k, n_total);
 
     let out = Out {
-        c: c.as_mut_ptr(),
+        c: c.ptr,
         ldc,
         bias: epi.bias.map_or(std::ptr::null(), <[f32]>::as_ptr),
         residual: epi.residual.map_or(std::ptr::null(), <[f32]>::as_ptr),
@@ -389,8 +488,9 @@ pub fn gemm(
     use shape::*;
     match a.machine {
         Machine::Scalar(s) => {
-            // SAFETY: the asserts above bound every C, residual and bias element the job
-            // touches; packed buffers are sized by this module.
+            // SAFETY: the band (checked when made) holds every C element the job writes, and
+            // no other band of C overlaps it; the asserts above bound every residual and bias
+            // element the job reads; packed buffers are sized by this module.
             unsafe { run::<Scalar, SCALAR_MR, SCALAR_NV, 1, 0>(s, &job, scratch) }
         }
         #[cfg(target_arch = "x86_64")]

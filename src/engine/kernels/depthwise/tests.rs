@@ -198,7 +198,19 @@ fn matches_reference() {
                 residual: res,
                 act,
             };
-            depthwise(&packed, &g, &input, &mut out, chans.clone(), &epi);
+            let band = chans.start * plane..chans.end * plane;
+            let epi_band = Epilogue {
+                residual: res.map(|r| &r[band.clone()]),
+                ..epi
+            };
+            depthwise(
+                &packed,
+                &g,
+                &input,
+                &mut out[band],
+                chans.clone(),
+                &epi_band,
+            );
             let (want, mag) = reference(case, &g, &w, &input, bias, res);
             let n = (g.kh * g.kw + 2) as f64;
             for (idx, &got) in out.iter().enumerate() {
@@ -252,7 +264,8 @@ fn bitwise_invariant_to_channel_split_and_across_simd_paths() {
             depthwise(&packed, &g, &input, &mut whole, 0..oc, &epi);
             let mut split = vec![0.0; oc * plane];
             for o in 0..oc {
-                depthwise(&packed, &g, &input, &mut split, o..o + 1, &epi);
+                let band = &mut split[o * plane..(o + 1) * plane];
+                depthwise(&packed, &g, &input, band, o..o + 1, &epi);
             }
             let bits = |v: &[f32]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
             assert_eq!(bits(&whole), bits(&split), "{isa:?}");
