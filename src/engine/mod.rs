@@ -14,7 +14,8 @@
 //! thread, each in its own workspace: samples never interact, so nothing synchronises inside
 //! the batch, and the calling thread computes the first run. A smaller batch (one image, most
 //! often) runs on the pool as one pass whose convolutions are each spread over all threads
-//! (see [`run`]). Either way, results are bitwise the same for any thread count.
+//! (see [`run`]), unless the network is so small that handing it over costs more than it
+//! saves. Either way, results are bitwise the same for any thread count.
 
 pub mod kernels;
 pub mod plan;
@@ -103,6 +104,9 @@ pub struct Engine {
     /// `None` inside if the OS refused them (batches then run on the calling thread). Callers
     /// running batches at the same time share it: their parts queue for its threads.
     pool: OnceLock<Option<ThreadPool>>,
+    /// Whether a batch smaller than the thread count is spread over the threads
+    /// ([`Plan::worth_spreading`]) or runs on the calling thread.
+    spread: bool,
 }
 
 /// Result of replaying a bundle's check samples.
@@ -135,8 +139,10 @@ impl Engine {
             Some(isa) => return Err(EngineError::UnsupportedIsa { isa }),
             None => Isa::detect()?,
         };
+        let plan = Plan::new(bundle, isa);
         Ok(Engine {
-            plan: Plan::new(bundle, isa),
+            spread: plan.worth_spreading(),
+            plan,
             threads: config.threads,
             max_batch: config.max_batch,
             workspaces: Mutex::new(Vec::new()),
@@ -253,9 +259,12 @@ impl Engine {
                 index: i % in_len,
             });
         }
-        let Some(pool) = self.pool() else {
-            self.run_pass(input, batch, output, None);
-            return Ok(());
+        let pool = match self.pool() {
+            Some(pool) if batch >= self.threads || self.spread => pool,
+            _ => {
+                self.run_pass(input, batch, output, None);
+                return Ok(());
+            }
         };
         if batch < self.threads {
             // Too few samples to go round: every thread works on every step.

@@ -77,6 +77,21 @@ fn team_parts(team: Team<'_>) -> usize {
 }
 
 impl Plan {
+    /// Whether one sample is worth spreading over threads: at least about a millisecond of
+    /// convolutions (at 10 billion multiply-adds per second), against the tens of
+    /// microseconds of handing the pass to the pool and back.
+    pub(crate) fn worth_spreading(&self) -> bool {
+        let total: usize = self
+            .steps
+            .iter()
+            .map(|s| match &s.kind {
+                StepKind::Conv(c) => c.multiply_adds(),
+                _ => 0,
+            })
+            .sum();
+        total >= 10_000_000
+    }
+
     /// Samples one pass through the plan handles at most: as many as fit the workspace
     /// budget, at least one.
     pub fn slice_samples(&self) -> usize {
@@ -348,6 +363,12 @@ fn run_conv(
 ) {
     let g = &conv.geom;
     let n = g.out_h * g.out_w;
+    // A small convolution is over before the other threads would have woken up.
+    let (scratches, team) = if conv.multiply_adds() < SPREAD_MIN_MULTIPLY_ADDS {
+        (&mut scratches[..1], None)
+    } else {
+        (scratches, team)
+    };
     let parts = scratches.len();
     match &conv.kind {
         ConvKind::Depthwise(w) => {
@@ -395,6 +416,10 @@ fn run_conv(
         }
     }
 }
+
+/// Convolutions of fewer multiply-adds per sample run on one thread: about 25 µs of work at
+/// 10 billion multiply-adds per second, a few times what waking and joining the team costs.
+const SPREAD_MIN_MULTIPLY_ADDS: usize = 1 << 18;
 
 /// Column parts start at multiples of this: whole vectors for every instruction set's
 /// microkernel (8 lanes of AVX2; a multiple of NEON's 4; AVX-512's 16 lanes lose at most

@@ -47,6 +47,14 @@ pub(crate) struct ConvStep {
     pub act: Activation,
 }
 
+impl ConvStep {
+    /// Multiply-adds of one sample.
+    pub fn multiply_adds(&self) -> usize {
+        let g = &self.geom;
+        self.out_c * g.out_h * g.out_w * (g.in_c / self.groups) * g.kh * g.kw
+    }
+}
+
 pub(crate) enum ConvKind {
     /// One packed matrix per group; `pointwise` means 1×1, stride 1, no padding, so the input
     /// is the B matrix itself.
