@@ -610,6 +610,14 @@ unsafe fn run<S: Simd, const MR: usize, const NV: usize, const VM: usize, const 
     let (m, k) = (job.a.m, job.a.k);
     let lanes = S::LANES;
     let nc = block_cols(k, NV * lanes);
+    // A plain matrix's full-width panels are read where they lie (one row of the panel per
+    // step, `ld` apart) rather than copied into the block first: the microkernel reads them
+    // the same number of times either way, and the copy was pure overhead. Ragged panels are
+    // packed, since their whole-vector loads would pass the matrix's last row.
+    let in_place = match *job.b {
+        BSource::Matrix { data, ld } => Some((data.as_ptr(), ld)),
+        _ => None,
+    };
     let a_stride = k * MR;
     let a_panels = m.div_ceil(MR);
     let a_base = job.a.data.as_ptr();
@@ -624,6 +632,9 @@ unsafe fn run<S: Simd, const MR: usize, const NV: usize, const VM: usize, const 
         // Multiplying each B panel right after packing it, with A re-read from L2, measured
         // slower on every shape of the benchmark.
         for p in &scratch.panels {
+            if in_place.is_some() && p.nv == NV {
+                continue;
+            }
             let len = k * p.width(lanes);
             let dst = &mut buf[p.offset..][..len];
             pack::pack_b(
@@ -636,15 +647,19 @@ unsafe fn run<S: Simd, const MR: usize, const NV: usize, const VM: usize, const 
                 dst,
             );
         }
-        let b_base = buf.as_mut_ptr();
+        let b_base = buf.as_mut_ptr().cast_const();
         let a = (a_base, a_stride, m, k);
         for ap in 0..a_panels {
             for p in scratch.panels.iter().filter(|p| p.nv > 0) {
-                // SAFETY: `ap` is a panel of the packed weights; the block is packed.
-                unsafe { tile_at::<S, MR, NV>(s, a, ap, b_base, p, out) };
+                let b = match in_place {
+                    Some((data, ld)) if p.nv == NV => (data.wrapping_add(p.n0), ld),
+                    _ => (b_base.wrapping_add(p.offset), p.width(lanes)),
+                };
+                // SAFETY: `ap` is a panel of the packed weights; B is the packed panel, or
+                // full-width columns of a matrix `check_b` bounded.
+                unsafe { tile_at::<S, MR, NV>(s, a, ap, b, p, out) };
             }
         }
-        let b_base = b_base.cast_const();
         if let Some(p) = scratch.panels.iter().find(|p| p.nv == 0) {
             // SAFETY: as above; the weights carry A_PAD floats of padding for the narrow
             // vectors' over-read.
@@ -672,17 +687,18 @@ unsafe fn run<S: Simd, const MR: usize, const NV: usize, const VM: usize, const 
     }
 }
 
-/// Multiplies B panel `p` (inside the block buffer at `b_base`) by A panel `ap` into C.
+/// Multiplies B panel `p` (`b`: its first step and the floats between steps) by A panel `ap`
+/// into C.
 ///
 /// # Safety
-/// `ap` is a panel of the weights at `a_base`; the panel lies inside the block buffer; the
-/// tile's rows and columns are inside C (as [`run`]).
+/// `ap` is a panel of the weights at `a_base`; `b` is readable for the panel's width at each
+/// of the `k` steps; the tile's rows and columns are inside C (as [`run`]).
 #[inline(always)]
 unsafe fn tile_at<S: Simd, const MR: usize, const NV: usize>(
     s: S,
     (a_base, a_stride, m, k): (*const f32, usize, usize, usize),
     ap: usize,
-    b_base: *mut f32,
+    b: (*const f32, usize),
     p: &Panel,
     out: &Out,
 ) {
@@ -691,10 +707,9 @@ unsafe fn tile_at<S: Simd, const MR: usize, const NV: usize>(
     // SAFETY: guaranteed by the caller.
     unsafe {
         let a_ptr = a_base.add(ap * a_stride);
-        let b_ptr = b_base.add(p.offset).cast_const();
         macro_rules! tile_nv {
             ($nv:literal) => {{
-                let acc = kernel::tile::<S, MR, $nv>(s, k, a_ptr, b_ptr);
+                let acc = kernel::tile::<S, MR, $nv>(s, k, a_ptr, b);
                 kernel::store_tile::<S, MR, $nv>(s, &acc, out, rows, cols);
             }};
         }

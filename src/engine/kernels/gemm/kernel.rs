@@ -217,18 +217,19 @@ pub(super) unsafe fn tile_masked_kw<S: Simd, const MR: usize, const NV: usize, c
 }
 
 /// Accumulates an `MR x (NV*LANES)` tile over `k` steps: `a` is an A panel (`MR` values per
-/// step), `b` a B panel (`NV*LANES` values per step).
+/// step), `b` the tile's B columns, `NV*LANES` values per step, steps `b_step` floats apart (a
+/// packed panel's width, or a plain matrix's row stride).
 ///
 /// # Safety
-/// `a` must be readable for `k*MR` floats and `b` for `k*NV*LANES`.
+/// `a` must be readable for `k*MR` floats, and `b` for `NV*LANES` floats from each
+/// `b + i*b_step`, `i < k`.
 #[inline(always)]
 pub(super) unsafe fn tile<S: Simd, const MR: usize, const NV: usize>(
     s: S,
     k: usize,
     a: *const f32,
-    b: *const f32,
+    (b, b_step): (*const f32, usize),
 ) -> [[S::V; NV]; MR] {
-    let width = NV * S::LANES;
     let mut acc = [[s.zero(); NV]; MR];
     let (mut a, mut b) = (a, b);
     for _ in 0..k {
@@ -244,11 +245,12 @@ pub(super) unsafe fn tile<S: Simd, const MR: usize, const NV: usize>(
                 *acc_rv = s.fma(av, bx, *acc_rv);
             }
         }
-        // SAFETY: advancing to the next step stays within (or one past) both panels.
+        // SAFETY: advancing to the next step stays within (or one past) A's panel; B's next
+        // step is only read if it is inside (the caller's bound), so `wrapping_add`.
         unsafe {
             a = a.add(MR);
-            b = b.add(width);
         }
+        b = b.wrapping_add(b_step);
     }
     acc
 }
