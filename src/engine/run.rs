@@ -26,7 +26,8 @@ use super::kernels::{depthwise, elementwise, layout, norm, pool, vmath};
 use super::plan::{ConvKind, ConvStep, Plan, StepKind};
 
 /// Buffers for one slice of a batch at a time (see [`Plan::slice_samples`]); grow-only, so a
-/// steady load allocates nothing but the few bytes that describe a spread step's parts.
+/// steady load allocates no activations. Each convolution still allocates the short lists
+/// that describe its parts (`share`, `planes`, `ColumnBand::split`), one part on one thread.
 #[derive(Default)]
 pub struct Workspace {
     buffers: Vec<Vec<f32>>,
