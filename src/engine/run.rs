@@ -22,7 +22,7 @@ use super::kernels::gemm::{
     BSource, ColumnBand, Epilogue, GemmScratch, PackedWeights, gemm, gemm_band,
 };
 use super::kernels::simd::Machine;
-use super::kernels::{depthwise, elementwise, layout, norm, pool, vmath};
+use super::kernels::{depthwise, elementwise, layout, norm, pool, vmath, winograd};
 use super::plan::{ConvKind, ConvStep, Plan, StepKind};
 
 /// Buffers for one slice of a batch at a time (see [`Plan::slice_samples`]); grow-only, so a
@@ -32,7 +32,7 @@ use super::plan::{ConvKind, ConvStep, Plan, StepKind};
 pub struct Workspace {
     buffers: Vec<Vec<f32>>,
     /// One per part a step is spread over (one without a [`Team`]).
-    gemm: Vec<GemmScratch>,
+    parts: Vec<PartScratch>,
     dense: Vec<f32>,
     /// Sums of layer norms and reductions.
     sums: Vec<f64>,
@@ -44,8 +44,8 @@ impl Workspace {
     }
 
     fn prepare(&mut self, plan: &Plan, batch: usize, parts: usize) {
-        if self.gemm.len() < parts {
-            self.gemm.resize_with(parts, GemmScratch::default);
+        if self.parts.len() < parts {
+            self.parts.resize_with(parts, PartScratch::default);
         }
         if self.buffers.len() < plan.buffer_len.len() {
             self.buffers.resize_with(plan.buffer_len.len(), Vec::new);
@@ -56,6 +56,14 @@ impl Workspace {
             }
         }
     }
+}
+
+/// What one part of a spread step works in.
+#[derive(Default)]
+struct PartScratch {
+    gemm: GemmScratch,
+    /// Transformed tiles of a Winograd convolution.
+    winograd: Vec<f32>,
 }
 
 /// Target size, in floats, of a workspace's value buffers (4 MiB, the order of a core's L2
@@ -183,7 +191,7 @@ impl Plan {
         let out = &mut out[..out_len * batch];
         let Workspace {
             buffers,
-            gemm: scratches,
+            parts: scratches,
             dense: tmp,
             sums,
         } = ws;
@@ -214,7 +222,15 @@ impl Plan {
                     residual: None,
                     act: *act,
                 };
-                dense(weights, &epi, *features, input, out, tmp, &mut scratches[0]);
+                dense(
+                    weights,
+                    &epi,
+                    *features,
+                    input,
+                    out,
+                    tmp,
+                    &mut scratches[0].gemm,
+                );
             }
             StepKind::Binary {
                 kind,
@@ -360,7 +376,7 @@ fn run_conv(
     input: &[f32],
     residual: Option<&[f32]>,
     out: &mut [f32],
-    (scratches, team): (&mut [GemmScratch], Team<'_>),
+    (scratches, team): (&mut [PartScratch], Team<'_>),
 ) {
     let g = &conv.geom;
     let n = g.out_h * g.out_w;
@@ -384,6 +400,27 @@ fn run_conv(
                 depthwise::depthwise(w, g, input, o, channels, &epi);
             });
         }
+        ConvKind::Winograd(w) => {
+            // Whole rows of tiles: each part a contiguous range of every channel's columns.
+            let rows = share(g.out_h.div_ceil(winograd::TILE), parts, 1);
+            let cols: Vec<Range<usize>> = rows
+                .iter()
+                .map(|r| {
+                    r.start * winograd::TILE * g.out_w
+                        ..(r.end * winograd::TILE).min(g.out_h) * g.out_w
+                })
+                .collect();
+            let bands = ColumnBand::split(out, conv.out_c, n, &cols);
+            let epi = Epilogue {
+                bias: conv.bias.as_deref(),
+                residual,
+                act: conv.act,
+            };
+            spread(team, bands, scratches, |c, part| {
+                let scratch = (&mut part.winograd, &mut part.gemm);
+                winograd::conv_band(w, g, input, c, &epi, scratch);
+            });
+        }
         ConvKind::Gemm { groups, pointwise } => {
             let ocg = conv.out_c / conv.groups;
             let group = GroupGemm {
@@ -397,10 +434,10 @@ fn run_conv(
             if groups.len() >= parts && parts > 1 {
                 // Enough groups for every thread: each takes whole groups (contiguous rows).
                 let chunks = planes(out, None, ocg * n, &share(groups.len(), parts, 1));
-                spread(team, chunks, scratches, |(range, o, _), scratch| {
+                spread(team, chunks, scratches, |(range, o, _), part| {
                     for (i, gi) in range.clone().enumerate() {
                         let c = ColumnBand::new(&mut o[i * ocg * n..][..ocg * n], ocg, n, 0..n);
-                        group.run(&groups[gi], gi, c, scratch);
+                        group.run(&groups[gi], gi, c, &mut part.gemm);
                     }
                 });
             } else {
@@ -409,8 +446,8 @@ fn run_conv(
                 for (gi, weights) in groups.iter().enumerate() {
                     let o = &mut out[gi * ocg * n..(gi + 1) * ocg * n];
                     let bands = ColumnBand::split(o, ocg, n, &cols);
-                    spread(team, bands, scratches, |c, scratch| {
-                        group.run(weights, gi, c, scratch);
+                    spread(team, bands, scratches, |c, part| {
+                        group.run(weights, gi, c, &mut part.gemm);
                     });
                 }
             }
@@ -521,8 +558,8 @@ fn planes<'a>(
 fn spread<T: Send>(
     team: Team<'_>,
     parts: Vec<T>,
-    scratches: &mut [GemmScratch],
-    f: impl Fn(T, &mut GemmScratch) + Sync,
+    scratches: &mut [PartScratch],
+    f: impl Fn(T, &mut PartScratch) + Sync,
 ) {
     assert!(parts.len() <= scratches.len(), "a part without a scratch");
     let mut work = parts.into_iter().zip(scratches.iter_mut());

@@ -267,8 +267,9 @@ impl LocalReport {
         );
         let _ = writeln!(
             s,
-            "work: {} multiply-adds per image (2 FLOPs each); peak: {} GFLOP/s on one core \
-             ({}), measured after the batches; of peak = GFLOP/s / (peak x threads)",
+            "work: {} multiply-adds per image (2 FLOPs each, as a direct convolution counts \
+             them; Winograd layers do fewer); peak: {} GFLOP/s on one core ({}), measured \
+             after the batches; of peak = GFLOP/s / (peak x threads)",
             number(self.multiply_adds_per_image as f64),
             number(self.fma_peak_gflops),
             self.isa

@@ -404,6 +404,23 @@ impl<'a> ColumnBand<'a> {
     pub fn cols(&self) -> Range<usize> {
         self.cols.clone()
     }
+
+    /// The band's part of row `r`: columns `cols()` of it.
+    ///
+    /// # Panics
+    /// If `r` is not one of the band's rows.
+    pub fn row(&mut self, r: usize) -> &mut [f32] {
+        assert!(r < self.rows, "row {r} of a band of {} rows", self.rows);
+        // SAFETY: the band stands for `&mut` access to columns `cols` of its rows, all inside
+        // the matrix (checked when it was made), and `&mut self` makes this slice the only
+        // reference to them while it lives.
+        unsafe {
+            std::slice::from_raw_parts_mut(
+                self.ptr.add(r * self.ldc + self.cols.start),
+                self.cols.len(),
+            )
+        }
+    }
 }
 
 /// Computes `C[m][n]` for all `m` in `0..M` and `n` in `cols` (a sub-range of `0..n_total`):

@@ -17,3 +17,4 @@ pub(crate) mod simd;
 #[cfg(test)]
 mod testutil;
 pub(crate) mod vmath;
+pub mod winograd;

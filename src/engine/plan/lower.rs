@@ -8,6 +8,7 @@ use crate::engine::kernels::gemm::{ConvGeom, PackedWeights};
 use crate::engine::kernels::isa::Isa;
 use crate::engine::kernels::layout::{merge_axes, row_major_strides};
 use crate::engine::kernels::pool::PoolGeom;
+use crate::engine::kernels::winograd::{self, WinogradWeights};
 use crate::graph::BinaryKind;
 
 pub(super) fn lower(
@@ -96,6 +97,8 @@ fn conv(kind: IrKind<'_>, isa: Isa, in_shape: &[usize], out_shape: &[usize]) -> 
     };
     let kind = if groups > 1 && icg == 1 && groups == in_shape[0] {
         ConvKind::Depthwise(PackedDepthwise::pack(isa, &weight, oc, kh, kw))
+    } else if winograd_pays(&geom, groups, oc) {
+        ConvKind::Winograd(WinogradWeights::pack(isa, &weight, oc, icg))
     } else {
         let ocg = oc / groups;
         let k = icg * kh * kw;
@@ -118,6 +121,19 @@ fn conv(kind: IrKind<'_>, isa: Isa, in_shape: &[usize], out_shape: &[usize]) -> 
         act,
     }))
 }
+
+/// Whether a convolution runs by Winograd's F(4×4, 3×3) rather than as one GEMM: it must fit
+/// the route (3×3, stride 1, one group), and have channels enough on both sides that the
+/// input transform (shared by all output channels) and the output transform (shared by all
+/// input channels) cost little next to the multiply-adds they save.
+fn winograd_pays(geom: &ConvGeom, groups: usize, out_c: usize) -> bool {
+    winograd::fits(geom, groups)
+        && geom.in_c >= WINOGRAD_MIN_CHANNELS
+        && out_c >= WINOGRAD_MIN_CHANNELS
+}
+
+/// See [`winograd_pays`].
+const WINOGRAD_MIN_CHANNELS: usize = 8;
 
 /// Every kind but convolutions and binary ops.
 fn other(

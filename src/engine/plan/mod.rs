@@ -27,6 +27,7 @@ use super::kernels::isa::Isa;
 use super::kernels::layout::StridedCopy;
 use super::kernels::norm::ReducePlan;
 use super::kernels::pool::PoolGeom;
+use super::kernels::winograd::WinogradWeights;
 use crate::bundle::Bundle;
 use crate::graph::BinaryKind;
 use fuse::{IrNode, fuse};
@@ -63,6 +64,8 @@ pub(crate) enum ConvKind {
         pointwise: bool,
     },
     Depthwise(PackedDepthwise),
+    /// A 3×3, stride-1 convolution by Winograd's F(4×4, 3×3) (see `kernels::winograd`).
+    Winograd(WinogradWeights),
 }
 
 /// What one step does.
