@@ -29,10 +29,56 @@ pub fn max_pool(g: &PoolGeom, input: &[f32], output: &mut [f32]) {
     {
         return max_pool_2x2_inside(g, input, output);
     }
-    max_pool_general(g, input, output);
+    max_pool_by_rows(g, input, output);
 }
 
-/// Any window, stride, dilation and padding; taps outside the input are skipped.
+/// Any window, stride, dilation and padding, a whole output row at a time: for each tap
+/// `(i, j)` in the window's row-major order, every output of the row folds in its tap, the
+/// columns whose tap falls inside the input found once per tap instead of checked per output.
+/// Each output thus folds the same taps in the same order as [`max_pool_general`] (the
+/// definition), so the same bits, and the inner loop has no bounds logic.
+fn max_pool_by_rows(g: &PoolGeom, input: &[f32], output: &mut [f32]) {
+    let [sy, sx] = g.stride;
+    for c in 0..g.c {
+        let plane = &input[c * g.in_h * g.in_w..][..g.in_h * g.in_w];
+        let out = &mut output[c * g.out_h * g.out_w..][..g.out_h * g.out_w];
+        for (oy, out_row) in out.chunks_exact_mut(g.out_w).enumerate() {
+            out_row.fill(f32::NEG_INFINITY);
+            for i in 0..g.kernel[0] {
+                let Some(y) = (oy * sy + i * g.dilation[0]).checked_sub(g.padding[0]) else {
+                    continue;
+                };
+                if y >= g.in_h {
+                    continue;
+                }
+                let row = &plane[y * g.in_w..][..g.in_w];
+                for j in 0..g.kernel[1] {
+                    // Output column ox reads input column ox·sx + shift, inside for lo..hi.
+                    let shift = (j * g.dilation[1]) as isize - g.padding[1] as isize;
+                    let lo = if shift >= 0 {
+                        0
+                    } else {
+                        shift.unsigned_abs().div_ceil(sx)
+                    };
+                    let hi = (g.in_w as isize - shift).max(0) as usize;
+                    let hi = hi.div_ceil(sx).min(g.out_w);
+                    if lo >= hi {
+                        continue;
+                    }
+                    let first = (lo * sx) as isize + shift;
+                    let taps = row[first as usize..].iter().step_by(sx);
+                    for (o, &v) in out_row[lo..hi].iter_mut().zip(taps) {
+                        *o = keep_max(*o, v);
+                    }
+                }
+            }
+        }
+    }
+}
+
+/// Any window, stride, dilation and padding, one output at a time; taps outside the input
+/// are skipped. The definition the faster paths are tested against.
+#[cfg(test)]
 fn max_pool_general(g: &PoolGeom, input: &[f32], output: &mut [f32]) {
     let (ih, iw) = (g.in_h as isize, g.in_w as isize);
     for c in 0..g.c {
@@ -262,6 +308,52 @@ mod tests {
         let bits = |v: &[f32]| v.iter().map(|f| f.to_bits()).collect::<Vec<_>>();
         assert_eq!(bits(&fast), bits(&general));
         assert!(fast.iter().any(|v| v.is_nan()));
+    }
+
+    // The row-at-a-time path gives the general loop's bits for windows, strides, dilations and
+    // paddings of every kind (ceil mode's extra partial windows included), NaN and signed
+    // zeros too.
+    #[test]
+    fn max_pool_by_rows_matches_the_general_loop() {
+        let specials = [f32::NAN, -0.0, 0.0, f32::NEG_INFINITY, f32::INFINITY];
+        let bits = |v: &[f32]| v.iter().map(|f| f.to_bits()).collect::<Vec<_>>();
+        let mut checked = 0;
+        for (h, w) in [(1, 1), (5, 7), (12, 9), (16, 16)] {
+            for k in 1..=4 {
+                for s in 1..=3 {
+                    for d in 1..=2 {
+                        for p in 0..k.min(3) {
+                            let span = d * (k - 1) + 1;
+                            if h + 2 * p < span || w + 2 * p < span {
+                                continue;
+                            }
+                            // Ceil mode: one more output where the last window starts inside.
+                            let out = |n: usize| (n + 2 * p - span).div_ceil(s) + 1;
+                            let g = PoolGeom {
+                                c: 2,
+                                kernel: [k, k],
+                                stride: [s, s],
+                                dilation: [d, d],
+                                ..geom(h, w, k, s, p, out(h), out(w))
+                            };
+                            let x: Vec<f32> = (0..2 * h * w)
+                                .map(|i| match (i * 7) % 23 {
+                                    r @ 0..=4 => specials[r],
+                                    r => r as f32 - 12.0,
+                                })
+                                .collect();
+                            let n = 2 * g.out_h * g.out_w;
+                            let (mut rows, mut general) = (vec![1.0; n], vec![2.0; n]);
+                            max_pool_by_rows(&g, &x, &mut rows);
+                            max_pool_general(&g, &x, &mut general);
+                            assert_eq!(bits(&rows), bits(&general), "{h}x{w} k{k} s{s} d{d} p{p}");
+                            checked += 1;
+                        }
+                    }
+                }
+            }
+        }
+        assert!(checked > 100, "{checked} geometries");
     }
 
     #[test]
