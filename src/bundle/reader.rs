@@ -101,95 +101,19 @@ impl Bundle {
     }
 
     fn parse(bytes: Storage) -> Result<Bundle, BundleError> {
-        let total = bytes.len() as u64;
-        if bytes.len() < HEADER_LEN {
-            return Err(BundleError::Truncated {
-                what: "header",
-                needed: HEADER_LEN as u64,
-                available: total,
-            });
-        }
-        let mut magic = [0u8; 8];
-        magic.copy_from_slice(&bytes[0..8]);
-        if magic != MAGIC {
-            return Err(BundleError::BadMagic { found: magic });
-        }
-        let u32_at =
-            |o: usize| u32::from_le_bytes([bytes[o], bytes[o + 1], bytes[o + 2], bytes[o + 3]]);
-        let u64_at = |o: usize| {
-            let mut b = [0u8; 8];
-            b.copy_from_slice(&bytes[o..o + 8]);
-            u64::from_le_bytes(b)
-        };
-        let format = u32_at(8);
-        if format != FORMAT_VERSION {
-            return Err(BundleError::UnsupportedFormat {
-                found: format,
-                supported: FORMAT_VERSION,
-            });
-        }
-        let flags = u32_at(12);
-        if flags & !FLAG_SIGNED != 0 {
-            return Err(BundleError::UnknownFlags { flags });
-        }
-        let signed = flags & FLAG_SIGNED != 0;
-        let manifest_len = u64_at(16);
-        let data_len = u64_at(24);
-        if manifest_len > MAX_MANIFEST_LEN {
-            return Err(BundleError::ManifestTooLarge {
-                length: manifest_len,
-                limit: MAX_MANIFEST_LEN,
-            });
-        }
-        let manifest_end = HEADER_LEN as u64 + manifest_len;
-        if total < manifest_end {
-            return Err(BundleError::Truncated {
-                what: "manifest",
-                needed: manifest_end,
-                available: total,
-            });
-        }
-        let data_start = align_up(manifest_end);
-        let expected = data_start
-            .checked_add(data_len)
-            .ok_or(BundleError::SizeMismatch {
-                expected: u64::MAX,
-                actual: total,
-            })?;
-        if total < expected {
-            return Err(BundleError::Truncated {
-                what: "data section",
-                needed: expected,
-                available: total,
-            });
-        }
-        let data_end = expected;
-        let expected = if signed {
-            data_end + SIGNATURE_BLOCK_LEN as u64
-        } else {
-            data_end
-        };
-        if total < expected {
-            return Err(BundleError::Truncated {
-                what: "signature block",
-                needed: expected,
-                available: total,
-            });
-        }
-        if total > expected {
-            return Err(BundleError::SizeMismatch {
-                expected,
-                actual: total,
-            });
-        }
-        // From here on every offset below `total` fits in usize, because `bytes` holds them.
-        let data_end = data_end as usize;
+        let Sections {
+            signed,
+            manifest_end,
+            data_start,
+            data_end,
+            data_len,
+        } = Sections::read(&bytes)?;
         let signature = if signed {
             Some(SignatureBlock::parse(&bytes[data_end..])?)
         } else {
             None
         };
-        let manifest_bytes = &bytes[HEADER_LEN..manifest_end as usize];
+        let manifest_bytes = &bytes[HEADER_LEN..manifest_end];
         let actual = hex(&Sha256::digest(manifest_bytes));
         let stored = hex(&bytes[32..64]);
         if actual != stored {
@@ -203,7 +127,6 @@ impl Bundle {
         validate_version(&manifest.version)?;
 
         let index = check_tensor_index(&manifest, data_len)?;
-        let data_start = data_start as usize;
         let (FileDigests { file, signed_part }, checked) =
             hash_file_and_data(&bytes, data_start..data_end, |data_sha256| {
                 let actual = hex(&data_sha256);
@@ -560,6 +483,112 @@ pub fn peek_identity(bytes: &[u8]) -> Option<(String, String)> {
     let version = value.get("version")?.as_str()?;
     (check_name(name).is_ok() && validate_version(version).is_ok())
         .then(|| (name.to_string(), version.to_string()))
+}
+
+/// Where a bundle's parts lie, read from its fixed header and checked against its length.
+struct Sections {
+    signed: bool,
+    /// End of the manifest (it starts right after the header).
+    manifest_end: usize,
+    data_start: usize,
+    data_end: usize,
+    /// The data section's length as the header states it.
+    data_len: u64,
+}
+
+impl Sections {
+    /// Checks the magic, format version and flags, and that the manifest, data section and
+    /// signature block the header announces are exactly the file's length.
+    fn read(bytes: &[u8]) -> Result<Sections, BundleError> {
+        let total = bytes.len() as u64;
+        if bytes.len() < HEADER_LEN {
+            return Err(BundleError::Truncated {
+                what: "header",
+                needed: HEADER_LEN as u64,
+                available: total,
+            });
+        }
+        let mut magic = [0u8; 8];
+        magic.copy_from_slice(&bytes[0..8]);
+        if magic != MAGIC {
+            return Err(BundleError::BadMagic { found: magic });
+        }
+        let u32_at =
+            |o: usize| u32::from_le_bytes([bytes[o], bytes[o + 1], bytes[o + 2], bytes[o + 3]]);
+        let u64_at = |o: usize| {
+            let mut b = [0u8; 8];
+            b.copy_from_slice(&bytes[o..o + 8]);
+            u64::from_le_bytes(b)
+        };
+        let format = u32_at(8);
+        if format != FORMAT_VERSION {
+            return Err(BundleError::UnsupportedFormat {
+                found: format,
+                supported: FORMAT_VERSION,
+            });
+        }
+        let flags = u32_at(12);
+        if flags & !FLAG_SIGNED != 0 {
+            return Err(BundleError::UnknownFlags { flags });
+        }
+        let signed = flags & FLAG_SIGNED != 0;
+        let manifest_len = u64_at(16);
+        let data_len = u64_at(24);
+        if manifest_len > MAX_MANIFEST_LEN {
+            return Err(BundleError::ManifestTooLarge {
+                length: manifest_len,
+                limit: MAX_MANIFEST_LEN,
+            });
+        }
+        let manifest_end = HEADER_LEN as u64 + manifest_len;
+        if total < manifest_end {
+            return Err(BundleError::Truncated {
+                what: "manifest",
+                needed: manifest_end,
+                available: total,
+            });
+        }
+        let data_start = align_up(manifest_end);
+        let data_end = data_start
+            .checked_add(data_len)
+            .ok_or(BundleError::SizeMismatch {
+                expected: u64::MAX,
+                actual: total,
+            })?;
+        if total < data_end {
+            return Err(BundleError::Truncated {
+                what: "data section",
+                needed: data_end,
+                available: total,
+            });
+        }
+        let expected = if signed {
+            data_end + SIGNATURE_BLOCK_LEN as u64
+        } else {
+            data_end
+        };
+        if total < expected {
+            return Err(BundleError::Truncated {
+                what: "signature block",
+                needed: expected,
+                available: total,
+            });
+        }
+        if total > expected {
+            return Err(BundleError::SizeMismatch {
+                expected,
+                actual: total,
+            });
+        }
+        // Every offset up to `total` fits in usize, because `bytes` holds them.
+        Ok(Sections {
+            signed,
+            manifest_end: manifest_end as usize,
+            data_start: data_start as usize,
+            data_end: data_end as usize,
+            data_len,
+        })
+    }
 }
 
 /// Parses the manifest, naming an unknown op precisely rather than as a generic JSON error.

@@ -168,9 +168,20 @@ pub fn inspect(path: &Path, json: bool) -> Result<(), CliError> {
 }
 
 fn render_text(r: &Report<'_>) -> String {
-    use std::fmt::Write as _;
     let mut s = String::new();
-    // Writing to a String cannot fail; the `let _` below discard an always-Ok result.
+    render_identity(&mut s, r);
+    render_input_output(&mut s, r);
+    render_layers(&mut s, r);
+    render_plan_and_checks(&mut s, r);
+    s
+}
+
+// Writing to a String cannot fail: the `let _` in the render functions below discard an
+// always-Ok result.
+
+/// Name, provenance, file, checksums and signature.
+fn render_identity(s: &mut String, r: &Report<'_>) {
+    use std::fmt::Write as _;
     let _ = writeln!(s, "model      {} version {}", r.name, r.version);
     if !r.description.is_empty() {
         let _ = writeln!(s, "about      {}", r.description);
@@ -204,6 +215,11 @@ fn render_text(r: &Report<'_>) -> String {
             );
         }
     }
+}
+
+/// The input's shape and image preparation, the output's shape, kind and labels.
+fn render_input_output(s: &mut String, r: &Report<'_>) {
+    use std::fmt::Write as _;
     let _ = writeln!(s, "input      {:?}", r.input.shape);
     if let Some(img) = &r.input.image {
         let _ = writeln!(
@@ -245,6 +261,11 @@ fn render_text(r: &Report<'_>) -> String {
             }
         );
     }
+}
+
+/// One line per layer: op, output shape, parameters and multiply-adds, then the totals.
+fn render_layers(s: &mut String, r: &Report<'_>) {
+    use std::fmt::Write as _;
     let _ = writeln!(s);
     let name_w = r
         .layers
@@ -280,6 +301,11 @@ fn render_text(r: &Report<'_>) -> String {
         with_commas(r.multiply_adds)
     );
     let _ = writeln!(s);
+}
+
+/// The plan, the stored check samples and the drift baseline.
+fn render_plan_and_checks(s: &mut String, r: &Report<'_>) {
+    use std::fmt::Write as _;
     let _ = writeln!(
         s,
         "plan       {} steps on {}; {} folded or fused",
@@ -308,7 +334,6 @@ fn render_text(r: &Report<'_>) -> String {
         }
     }
     let _ = writeln!(s, "{}", drift_line(r.drift_baseline.as_ref()));
-    s
 }
 
 /// The `drift` line: whether the bundle carries a reference for drift monitoring.

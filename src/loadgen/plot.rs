@@ -18,6 +18,9 @@ const RIGHT: f64 = 30.0;
 const TOP: f64 = 90.0;
 const BOTTOM: f64 = 70.0;
 const BINS: usize = 80;
+/// Width and height of the plot area.
+const PLOT_W: f64 = WIDTH - LEFT - RIGHT;
+const PLOT_H: f64 = HEIGHT - TOP - BOTTOM;
 
 /// `&`, `<`, `>` and quotes escaped for XML text and attributes.
 fn xml(s: &str) -> String {
@@ -98,8 +101,8 @@ fn bins(report: &LoadReport, lo: f64, hi: f64) -> Vec<f64> {
 /// The SVG document for `report`.
 pub fn render_svg(report: &LoadReport) -> String {
     let mut s = String::new();
-    let (pw, ph) = (WIDTH - LEFT - RIGHT, HEIGHT - TOP - BOTTOM);
-    // Writing to a String cannot fail.
+    // Writing to a String cannot fail: the `let _` here and in the render functions below
+    // discard an always-Ok result.
     let _ = writeln!(
         s,
         r#"<svg xmlns="http://www.w3.org/2000/svg" width="{WIDTH}" height="{HEIGHT}" viewBox="0 0 {WIDTH} {HEIGHT}" font-family="sans-serif" font-size="13">"#
@@ -108,6 +111,55 @@ pub fn render_svg(report: &LoadReport) -> String {
         s,
         r#"<rect width="{WIDTH}" height="{HEIGHT}" fill="white"/>"#
     );
+    render_titles(&mut s, report);
+    let (Some(min), Some(max)) = (report.histogram.min(), report.histogram.max()) else {
+        let _ = writeln!(
+            s,
+            r#"<text x="{}" y="{}" text-anchor="middle">no successful requests: nothing to plot</text>"#,
+            WIDTH / 2.0,
+            HEIGHT / 2.0
+        );
+        s.push_str("</svg>\n");
+        return s;
+    };
+    let (lo, hi) = axis_range(min as f64 / 1e6, max as f64 / 1e6);
+    let shares = bins(report, lo, hi);
+    let top_share = shares.iter().copied().fold(0.0, f64::max);
+    let step = nice_step(top_share);
+    let axes = Axes {
+        lo,
+        hi,
+        y_max: (top_share / step).ceil().max(1.0) * step,
+        y_step: step,
+    };
+    render_bars(&mut s, &axes, &shares);
+    render_axes(&mut s, &axes);
+    render_percentiles(&mut s, report, &axes);
+    s.push_str("</svg>\n");
+    s
+}
+
+/// The plot area's scales: x is log10 of milliseconds from `lo` to `hi`, y the share of ok
+/// requests per bin from 0 to `y_max`, ticked every `y_step`.
+struct Axes {
+    lo: f64,
+    hi: f64,
+    y_max: f64,
+    y_step: f64,
+}
+
+impl Axes {
+    fn x_of(&self, log_ms: f64) -> f64 {
+        LEFT + (log_ms - self.lo) / (self.hi - self.lo) * PLOT_W
+    }
+
+    fn y_of(&self, share: f64) -> f64 {
+        TOP + PLOT_H - share / self.y_max * PLOT_H
+    }
+}
+
+/// Title (pace and throughput) and subtitle (counts, errors, duration).
+fn render_titles(s: &mut String, report: &LoadReport) {
     let title = format!(
         "convoy bench, {}: {} ok requests/s, {} samples/s",
         report.pace_text(),
@@ -139,54 +191,42 @@ pub fn render_svg(report: &LoadReport) -> String {
         WIDTH / 2.0,
         xml(&subtitle)
     );
-    let (Some(min), Some(max)) = (report.histogram.min(), report.histogram.max()) else {
-        let _ = writeln!(
-            s,
-            r#"<text x="{}" y="{}" text-anchor="middle">no successful requests: nothing to plot</text>"#,
-            WIDTH / 2.0,
-            HEIGHT / 2.0
-        );
-        s.push_str("</svg>\n");
-        return s;
-    };
-    let (lo, hi) = axis_range(min as f64 / 1e6, max as f64 / 1e6);
-    let x_of = |log_ms: f64| LEFT + (log_ms - lo) / (hi - lo) * pw;
-    let shares = bins(report, lo, hi);
-    let top_share = shares.iter().copied().fold(0.0, f64::max);
-    let step = nice_step(top_share);
-    let y_max = (top_share / step).ceil().max(1.0) * step;
-    let y_of = |share: f64| TOP + ph - share / y_max * ph;
+}
 
-    // Grid and y ticks.
+/// Horizontal grid lines with the y ticks, then one bar per non-empty bin.
+fn render_bars(s: &mut String, axes: &Axes, shares: &[f64]) {
     let mut v = 0.0;
-    while v <= y_max + step * 1e-6 {
-        let y = y_of(v);
+    while v <= axes.y_max + axes.y_step * 1e-6 {
+        let y = axes.y_of(v);
         let _ = writeln!(
             s,
             r##"<line x1="{LEFT}" x2="{}" y1="{y:.1}" y2="{y:.1}" stroke="#e4e4e4"/><text x="{}" y="{:.1}" text-anchor="end">{}</text>"##,
-            LEFT + pw,
+            LEFT + PLOT_W,
             LEFT - 8.0,
             y + 4.0,
             number(v)
         );
-        v += step;
+        v += axes.y_step;
     }
-    // Bars.
-    let bin_w = pw / BINS as f64;
+    let bin_w = PLOT_W / BINS as f64;
     for (i, &share) in shares.iter().enumerate() {
         if share <= 0.0 {
             continue;
         }
-        let y = y_of(share);
+        let y = axes.y_of(share);
         let _ = writeln!(
             s,
             r##"<rect x="{:.2}" y="{y:.2}" width="{:.2}" height="{:.2}" fill="#4a7fb5"/>"##,
             LEFT + i as f64 * bin_w,
             bin_w.max(0.5),
-            TOP + ph - y
+            TOP + PLOT_H - y
         );
     }
-    // Axes and x ticks.
+}
+
+/// Both axes, the x ticks and the axis titles.
+fn render_axes(s: &mut String, axes: &Axes) {
+    let (pw, ph) = (PLOT_W, PLOT_H);
     let _ = writeln!(
         s,
         r##"<line x1="{LEFT}" x2="{LEFT}" y1="{TOP}" y2="{}" stroke="#222"/><line x1="{LEFT}" x2="{}" y1="{}" y2="{}" stroke="#222"/>"##,
@@ -195,8 +235,8 @@ pub fn render_svg(report: &LoadReport) -> String {
         TOP + ph,
         TOP + ph
     );
-    for t in x_ticks(lo, hi) {
-        let x = x_of(t.log10());
+    for t in x_ticks(axes.lo, axes.hi) {
+        let x = axes.x_of(t.log10());
         let _ = writeln!(
             s,
             r##"<line x1="{x:.1}" x2="{x:.1}" y1="{}" y2="{}" stroke="#222"/><text x="{x:.1}" y="{}" text-anchor="middle">{}</text>"##,
@@ -217,7 +257,10 @@ pub fn render_svg(report: &LoadReport) -> String {
         r#"<text transform="translate(22 {}) rotate(-90)" text-anchor="middle">share of ok requests per bin (%)</text>"#,
         TOP + ph / 2.0
     );
-    // Percentile markers; labels on three rows so close ones do not overlap.
+}
+
+/// Percentile markers; labels on three rows so close ones do not overlap.
+fn render_percentiles(s: &mut String, report: &LoadReport, axes: &Axes) {
     let marks = [
         ("p50", report.latency_ms.p50, "#2a9d4a"),
         ("p99", report.latency_ms.p99, "#e08a00"),
@@ -225,21 +268,23 @@ pub fn render_svg(report: &LoadReport) -> String {
     ];
     for (row, (name, value, colour)) in marks.iter().enumerate() {
         let Some(ms) = value else { continue };
-        let x = x_of(ms.max(1e-6).log10());
+        let x = axes.x_of(ms.max(1e-6).log10());
         let label_y = TOP - 26.0 + row as f64 * 13.0;
-        let anchor = if x > LEFT + pw * 0.85 { "end" } else { "start" };
+        let anchor = if x > LEFT + PLOT_W * 0.85 {
+            "end"
+        } else {
+            "start"
+        };
         let dx = if anchor == "end" { -4.0 } else { 4.0 };
         let _ = writeln!(
             s,
             r#"<line x1="{x:.1}" x2="{x:.1}" y1="{:.1}" y2="{}" stroke="{colour}" stroke-width="2" stroke-dasharray="6 4"/><text x="{:.1}" y="{label_y:.1}" fill="{colour}" text-anchor="{anchor}" font-weight="bold">{name} {} ms</text>"#,
             label_y - 4.0,
-            TOP + ph,
+            TOP + PLOT_H,
             x + dx,
             number(*ms)
         );
     }
-    s.push_str("</svg>\n");
-    s
 }
 
 #[cfg(test)]

@@ -25,13 +25,14 @@ use tokio::sync::oneshot;
 
 pub use config::{ConfigError, ServeConfig};
 
+use crate::bundle::signature::PublicKey;
 use crate::drift::WindowConfig;
 use crate::engine::EngineConfig;
 use crate::prepare::ImageLimits;
 use crate::registry::{LoadOutcome, LoadSettings, Policy, Registry};
 use crate::rollout::control::{ControlService, TokenCheck};
 use crate::rollout::watch::{self, WatchConfig, WatchHandle};
-use crate::rollout::{Rollout, RolloutError};
+use crate::rollout::{ChangeReport, Rollout, RolloutError};
 use crate::scheduler::{Scheduler, SchedulerConfig};
 use crate::telemetry::{self, TelemetryError, TelemetryHandle};
 use predictor::{PredictorService, RequestLimits, Shared};
@@ -326,28 +327,7 @@ pub async fn start(config: &ServeConfig) -> Result<RunningServer, StartError> {
     let transport = tls::server_builder(config)?;
     let trusted_keys = tls::trusted_keys(config)?;
     let telemetry = telemetry::install(config.metrics_listen)?;
-    let registry = Arc::new(Registry::new(
-        LoadSettings {
-            engine: EngineConfig {
-                threads: 1,
-                max_batch: config.batch_limit,
-                ..EngineConfig::default()
-            },
-            // A batch of one (an idle server) and a full batch (a busy one).
-            warm_up_batches: vec![1, config.batch_limit],
-            drift: config.drift_monitoring.then_some(WindowConfig {
-                capacity: config.drift_window,
-                ..WindowConfig::default()
-            }),
-            trusted_keys,
-        },
-        Policy {
-            pins: config.pinned_versions.clone(),
-            keep_previous: config.keep_previous,
-            retire_last: config.retire_last,
-        },
-        config.default_model.clone(),
-    ));
+    let registry = Arc::new(build_registry(config, trusted_keys));
     telemetry::drift::watch_drift(&registry, config.drift_alpha);
     let scheduler = Arc::new(Scheduler::start(&SchedulerConfig {
         compute_threads: config.compute_threads,
@@ -362,20 +342,7 @@ pub async fn start(config: &ServeConfig) -> Result<RunningServer, StartError> {
         reporter,
         config.models.clone(),
     ));
-    let first = match &config.models {
-        Some(dir) => rollout.rescan().await.map_err(|e| match e {
-            RolloutError::Folder { path, source } => StartError::Models { path, source },
-            other => StartError::Models {
-                path: dir.clone(),
-                source: std::io::Error::other(other.to_string()),
-            },
-        })?,
-        None => {
-            rollout
-                .load_bytes(DEMO_BUNDLE.to_vec(), "built-in demo")
-                .await
-        }
-    };
+    let first = load_first_models(config, &rollout).await?;
     let watcher = config.models.as_ref().map(|dir| {
         watch::spawn(
             Arc::clone(&rollout),
@@ -417,21 +384,7 @@ pub async fn start(config: &ServeConfig) -> Result<RunningServer, StartError> {
     let listener = bind(config.listen).await?;
     let local_addr = local_addr_of(&listener, config.listen)?;
     let control = if config.control {
-        let token = config.control_token()?.unwrap_or_default();
-        let listener = bind(config.control_listen).await?;
-        let addr = local_addr_of(&listener, config.control_listen)?;
-        if !addr.ip().is_loopback() {
-            // Reached only with TLS (tls::check_control_exposure): the token is encrypted,
-            // but whoever holds it can still change what is served.
-            tracing::warn!(%addr, "the control service listens beyond loopback (TLS); its token is its only guard");
-        }
-        Some(serve_control(
-            transport.clone(),
-            listener,
-            addr,
-            Arc::clone(&rollout),
-            &token,
-        )?)
+        Some(start_control(config, transport.clone(), Arc::clone(&rollout)).await?)
     } else {
         None
     };
@@ -465,6 +418,69 @@ pub async fn start(config: &ServeConfig) -> Result<RunningServer, StartError> {
         shutdown: Some(tx),
         task,
     })
+}
+
+/// The registry of loaded models, with the engine, warm-up, drift and retention settings of
+/// `config`.
+fn build_registry(config: &ServeConfig, trusted_keys: Vec<PublicKey>) -> Registry {
+    Registry::new(
+        LoadSettings {
+            engine: EngineConfig {
+                threads: 1,
+                max_batch: config.batch_limit,
+                ..EngineConfig::default()
+            },
+            // A batch of one (an idle server) and a full batch (a busy one).
+            warm_up_batches: vec![1, config.batch_limit],
+            drift: config.drift_monitoring.then_some(WindowConfig {
+                capacity: config.drift_window,
+                ..WindowConfig::default()
+            }),
+            trusted_keys,
+        },
+        Policy {
+            pins: config.pinned_versions.clone(),
+            keep_previous: config.keep_previous,
+            retire_last: config.retire_last,
+        },
+        config.default_model.clone(),
+    )
+}
+
+/// The models folder's bundles, or the built-in demo when no folder is configured.
+async fn load_first_models(
+    config: &ServeConfig,
+    rollout: &Rollout,
+) -> Result<ChangeReport, StartError> {
+    match &config.models {
+        Some(dir) => rollout.rescan().await.map_err(|e| match e {
+            RolloutError::Folder { path, source } => StartError::Models { path, source },
+            other => StartError::Models {
+                path: dir.clone(),
+                source: std::io::Error::other(other.to_string()),
+            },
+        }),
+        None => Ok(rollout
+            .load_bytes(DEMO_BUNDLE.to_vec(), "built-in demo")
+            .await),
+    }
+}
+
+/// Binds the control port and starts the control service behind its token.
+async fn start_control(
+    config: &ServeConfig,
+    transport: tonic::transport::Server,
+    rollout: Arc<Rollout>,
+) -> Result<ControlServer, StartError> {
+    let token = config.control_token()?.unwrap_or_default();
+    let listener = bind(config.control_listen).await?;
+    let addr = local_addr_of(&listener, config.control_listen)?;
+    if !addr.ip().is_loopback() {
+        // Reached only with TLS (tls::check_control_exposure): the token is encrypted,
+        // but whoever holds it can still change what is served.
+        tracing::warn!(%addr, "the control service listens beyond loopback (TLS); its token is its only guard");
+    }
+    serve_control(transport, listener, addr, rollout, &token)
 }
 
 async fn bind(addr: SocketAddr) -> Result<TcpListener, StartError> {

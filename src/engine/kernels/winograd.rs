@@ -177,38 +177,92 @@ pub fn conv_band(
             count: tb,
             ld: block,
         };
-        for ch in 0..in_c {
-            for g0 in (0..tb).step_by(LANES) {
-                at.transform_input(input, ch, in_c, g0, v);
-            }
-        }
+        transform_inputs(w.machine, &at, input, in_c, v);
         for xi in 0..XI {
             gemm(
                 &w.u[xi],
                 &BSource::Matrix {
-                    data: &v[xi * in_c * block..(xi + 1) * in_c * block],
-                    ld: block,
+                    data: &v[xi * block..],
+                    ld: XI * block,
                 },
                 tb,
                 0..tb,
-                &mut m[xi * out_c * block..(xi + 1) * out_c * block],
-                block,
+                &mut m[xi * block..],
+                XI * block,
                 &no_epilogue,
                 scratch,
             );
         }
-        for row in 0..out_c {
-            let out = c.row(row);
-            for g0 in (0..tb).step_by(LANES) {
-                at.transform_output(m, row, out_c, g0, epi, cols.start, out);
-            }
-        }
+        transform_outputs(w.machine, &at, m, out_c, epi, &mut c);
         b0 += tb;
     }
     if epi.act != Default::default() {
         for row in 0..out_c {
             vmath::apply_on(w.machine, epi.act, c.row(row));
         }
+    }
+}
+
+/// Every input channel of the block's tiles into `v`, compiled for AVX2 where the CPU has it
+/// (wider lanes, the same operations in the same order: the same bits).
+fn transform_inputs(machine: Machine, at: &Tiles<'_>, input: &[f32], in_c: usize, v: &mut [f32]) {
+    #[inline(always)]
+    fn all(at: &Tiles<'_>, input: &[f32], in_c: usize, v: &mut [f32]) {
+        for ch in 0..in_c {
+            for g0 in (0..at.count).step_by(LANES) {
+                at.transform_input(input, ch, g0, v);
+            }
+        }
+    }
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx2")]
+    fn all_avx2(at: &Tiles<'_>, input: &[f32], in_c: usize, v: &mut [f32]) {
+        all(at, input, in_c, v);
+    }
+    match machine {
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: the token proves the CPU runs AVX2.
+        Machine::Avx2(_) | Machine::Avx512(_) => unsafe { all_avx2(at, input, in_c, v) },
+        _ => all(at, input, in_c, v),
+    }
+}
+
+/// Every output channel of the block's tiles from `m` into the band `c`, with bias and
+/// residual; compiled as [`transform_inputs`] is.
+fn transform_outputs(
+    machine: Machine,
+    at: &Tiles<'_>,
+    m: &[f32],
+    out_c: usize,
+    epi: &Epilogue<'_>,
+    c: &mut ColumnBand<'_>,
+) {
+    #[inline(always)]
+    fn all(at: &Tiles<'_>, m: &[f32], out_c: usize, epi: &Epilogue<'_>, c: &mut ColumnBand<'_>) {
+        let col0 = c.cols().start;
+        for row in 0..out_c {
+            let out = c.row(row);
+            for g0 in (0..at.count).step_by(LANES) {
+                at.transform_output(m, row, g0, epi, col0, out);
+            }
+        }
+    }
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx2")]
+    fn all_avx2(
+        at: &Tiles<'_>,
+        m: &[f32],
+        out_c: usize,
+        epi: &Epilogue<'_>,
+        c: &mut ColumnBand<'_>,
+    ) {
+        all(at, m, out_c, epi, c);
+    }
+    match machine {
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: the token proves the CPU runs AVX2.
+        Machine::Avx2(_) | Machine::Avx512(_) => unsafe { all_avx2(at, m, out_c, epi, c) },
+        _ => all(at, m, out_c, epi, c),
     }
 }
 
@@ -226,14 +280,16 @@ type Lanes = [f32; LANES];
 
 impl Tiles<'_> {
     /// Top-left output position of the block's tile `t`.
+    #[inline(always)]
     fn origin(&self, t: usize) -> (usize, usize) {
         let tile = self.first + t;
         (tile / self.tiles_w * TILE, tile % self.tiles_w * TILE)
     }
 
     /// `Bᵀ d B` of channel `ch` for tiles `g0..g0 + LANES` of the block (zeros past its end),
-    /// into `v[ξ][ch][g0..]`.
-    fn transform_input(&self, input: &[f32], ch: usize, in_c: usize, g0: usize, v: &mut [f32]) {
+    /// into `v[ch][ξ][g0..]`.
+    #[inline(always)]
+    fn transform_input(&self, input: &[f32], ch: usize, g0: usize, v: &mut [f32]) {
         let g = self.geom;
         let plane = &input[ch * g.in_h * g.in_w..][..g.in_h * g.in_w];
         let mut d = [[[0.0f32; LANES]; PATCH]; PATCH];
@@ -272,14 +328,17 @@ impl Tiles<'_> {
         // Bᵀ on the columns, then on the rows: t = Bᵀ d, then v = t B.
         let mut t = [[[0.0f32; LANES]; PATCH]; PATCH];
         for j in 0..PATCH {
-            let col = bt(std::array::from_fn(|i| d[i][j]));
-            for (r, x) in col.into_iter().enumerate() {
+            let mut col = [[0.0f32; LANES]; PATCH];
+            for (c, drow) in col.iter_mut().zip(&d) {
+                *c = drow[j];
+            }
+            for (r, x) in bt(col).into_iter().enumerate() {
                 t[r][j] = x;
             }
         }
         for (r, row) in t.iter().enumerate() {
             for (s, x) in bt(*row).into_iter().enumerate() {
-                let at = ((r * PATCH + s) * in_c + ch) * self.ld + g0;
+                let at = (ch * XI + r * PATCH + s) * self.ld + g0;
                 v[at..at + LANES].copy_from_slice(&x);
             }
         }
@@ -288,50 +347,57 @@ impl Tiles<'_> {
     /// `Aᵀ M A` of output channel `row` for tiles `g0..` of the block, plus bias and residual,
     /// written to that channel's row `out` of the band (which starts at column `col0`).
     #[allow(clippy::too_many_arguments)]
+    #[inline(always)]
     fn transform_output(
         &self,
         m: &[f32],
         row: usize,
-        out_c: usize,
         g0: usize,
         epi: &Epilogue<'_>,
         col0: usize,
         out: &mut [f32],
     ) {
         let g = self.geom;
-        let x: [[Lanes; PATCH]; PATCH] = std::array::from_fn(|r| {
-            std::array::from_fn(|s| {
-                let at = ((r * PATCH + s) * out_c + row) * self.ld + g0;
-                let mut lanes = [0.0; LANES];
-                lanes.copy_from_slice(&m[at..at + LANES]);
-                lanes
-            })
-        });
         // Aᵀ on the columns, then on the rows.
         let mut t = [[[0.0f32; LANES]; PATCH]; TILE];
         for s in 0..PATCH {
-            let col = at(std::array::from_fn(|r| x[r][s]));
-            for (i, v) in col.into_iter().enumerate() {
-                t[i][s] = v;
+            let mut col = [[0.0f32; LANES]; PATCH];
+            for (r, lanes) in col.iter_mut().enumerate() {
+                let at = (row * XI + r * PATCH + s) * self.ld + g0;
+                lanes.copy_from_slice(&m[at..at + LANES]);
+            }
+            for (ti, v) in t.iter_mut().zip(at(col)) {
+                ti[s] = v;
             }
         }
-        let y: [[Lanes; TILE]; TILE] = std::array::from_fn(|i| at(t[i]));
-        let bias = epi.bias.map(|b| b[row]);
+        let mut y = [[[0.0f32; LANES]; TILE]; TILE];
+        for (yi, ti) in y.iter_mut().zip(&t) {
+            *yi = at(*ti);
+        }
+        if let Some(b) = epi.bias.map(|b| b[row]) {
+            for v in y.iter_mut().flatten().flatten() {
+                *v += b;
+            }
+        }
         let plane = g.out_h * g.out_w;
         let residual = epi.residual.map(|r| &r[row * plane..][..plane]);
         for lane in 0..LANES.min(self.count - g0) {
             let (oy, ox) = self.origin(g0 + lane);
+            let cols = (g.out_w - ox).min(TILE);
             for (i, yrow) in y.iter().enumerate().take(g.out_h - oy) {
                 let at = (oy + i) * g.out_w + ox;
-                for (j, v) in yrow.iter().enumerate().take(g.out_w - ox) {
-                    let mut v = v[lane];
-                    if let Some(b) = bias {
-                        v += b;
+                let dst = &mut out[at - col0..][..cols];
+                match residual {
+                    Some(r) => {
+                        for ((d, v), r) in dst.iter_mut().zip(yrow).zip(&r[at..at + cols]) {
+                            *d = v[lane] + r;
+                        }
                     }
-                    if let Some(r) = residual {
-                        v += r[at + j];
+                    None => {
+                        for (d, v) in dst.iter_mut().zip(yrow) {
+                            *d = v[lane];
+                        }
                     }
-                    out[at + j - col0] = v;
                 }
             }
         }
