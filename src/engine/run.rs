@@ -259,15 +259,7 @@ impl Plan {
                 }
             }
             StepKind::Concat { outer, blocks } => {
-                let mut parts: Vec<(&[f32], usize)> = Vec::with_capacity(blocks.len());
-                for s in 0..batch {
-                    parts.clear();
-                    for (&v, &block) in step.inputs.iter().zip(blocks) {
-                        let len = self.value_len[v];
-                        parts.push((&self.value(buffers, v, batch)[s * len..][..len], block));
-                    }
-                    layout::concat(*outer, &parts, &mut out[s * out_len..][..out_len]);
-                }
+                self.concat(&step.inputs, (*outer, blocks), buffers, batch, out);
             }
             StepKind::Act(a) => {
                 out.copy_from_slice(input);
@@ -283,6 +275,29 @@ impl Plan {
                     );
                 }
             }
+        }
+    }
+}
+
+impl Plan {
+    /// Each sample's `inputs`, seen as `[outer, blocks[i]]`, joined block by block into `out`.
+    fn concat(
+        &self,
+        inputs: &[usize],
+        (outer, blocks): (usize, &[usize]),
+        buffers: &[Vec<f32>],
+        batch: usize,
+        out: &mut [f32],
+    ) {
+        let out_len = out.len() / batch;
+        let mut parts: Vec<(&[f32], usize)> = Vec::with_capacity(blocks.len());
+        for s in 0..batch {
+            parts.clear();
+            for (&v, &block) in inputs.iter().zip(blocks) {
+                let len = self.value_len[v];
+                parts.push((&self.value(buffers, v, batch)[s * len..][..len], block));
+            }
+            layout::concat(outer, &parts, &mut out[s * out_len..][..out_len]);
         }
     }
 }
