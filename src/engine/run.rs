@@ -665,6 +665,138 @@ mod tests {
         Bundle::from_bytes(w.to_bytes().unwrap()).unwrap()
     }
 
+    /// Two 3×3 convolutions, 32 → 32 channels at 16×16 (16 tiles: the Winograd route), the
+    /// second with a residual add of the block's input and a ReLU fused in: bundle, plan and
+    /// runner around `kernels::winograd`.
+    fn winograd_block() -> (Bundle, Vec<f32>, Vec<f32>) {
+        const C: usize = 32;
+        let mut rng = SplitMix64::new(21);
+        let mut b = GraphBuilder::new("x", &[C, 16, 16]);
+        let x = b.input();
+        let (w1, b1) = (rng.vec(C * C * 9, -0.1, 0.1), rng.vec(C, -0.1, 0.1));
+        let w2 = rng.vec(C * C * 9, -0.1, 0.1);
+        let conv = |b: &mut GraphBuilder, name: &str, w: &str, bias: Option<String>, x: &str| {
+            b.node(
+                name,
+                Op::Conv2d {
+                    weight: w.to_string(),
+                    bias,
+                    stride: [1, 1],
+                    dilation: [1, 1],
+                    padding: [1; 4],
+                    groups: 1,
+                },
+                &[x],
+            )
+        };
+        let t1 = b.tensor("c1.w", &[C, C, 3, 3], w1.clone());
+        let tb = b.tensor("c1.b", &[C], b1.clone());
+        let c1 = conv(&mut b, "c1", &t1, Some(tb), &x);
+        let t2 = b.tensor("c2.w", &[C, C, 3, 3], w2.clone());
+        let c2 = conv(&mut b, "c2", &t2, None, &c1);
+        let add = b.node("add", Op::Add { constant: None }, &[&c2, &x]);
+        let out = b.node("relu", Op::Relu, &[&add]);
+        let (graph, tensors) = b.finish(&out);
+        let mut writer = BundleWriter::new(
+            "winograd",
+            "1",
+            graph,
+            InputSpec {
+                shape: vec![C, 16, 16],
+                image: None,
+            },
+            OutputSpec {
+                labels: Vec::new(),
+                kind: OutputKind::Logits,
+            },
+        );
+        for (name, shape, data) in tensors {
+            writer.add_tensor(name, &shape, data).unwrap();
+        }
+        let bundle = Bundle::from_bytes(writer.to_bytes().unwrap()).unwrap();
+        let mut weights = w1;
+        weights.extend(b1);
+        weights.extend(w2);
+        (bundle, weights, rng.vec(C * 256, -1.0, 1.0))
+    }
+
+    /// The definition of the block above in double precision: 3×3 cross-correlation with zero
+    /// padding 1 (common practice; PyTorch's `Conv2d` documents the same sum).
+    fn winograd_block_reference(weights: &[f32], x: &[f32]) -> Vec<f64> {
+        const C: usize = 32;
+        let conv = |w: &[f32], x: &[f64]| {
+            let mut y = vec![0.0f64; C * 256];
+            for o in 0..C {
+                for oy in 0..16 {
+                    for ox in 0..16 {
+                        let mut acc = 0.0;
+                        for c in 0..C {
+                            for i in 0..3 {
+                                for j in 0..3 {
+                                    let (iy, ix) = (oy + i, ox + j);
+                                    if (1..=16).contains(&iy) && (1..=16).contains(&ix) {
+                                        acc += f64::from(w[((o * C + c) * 3 + i) * 3 + j])
+                                            * x[(c * 16 + iy - 1) * 16 + ix - 1];
+                                    }
+                                }
+                            }
+                        }
+                        y[(o * 16 + oy) * 16 + ox] = acc;
+                    }
+                }
+            }
+            y
+        };
+        let (w1, rest) = weights.split_at(C * C * 9);
+        let (b1, w2) = rest.split_at(C);
+        let x: Vec<f64> = x.iter().map(|&v| f64::from(v)).collect();
+        let mut y1 = conv(w1, &x);
+        for (i, v) in y1.iter_mut().enumerate() {
+            *v += f64::from(b1[i / 256]);
+        }
+        let y2 = conv(w2, &y1);
+        y2.iter().zip(&x).map(|(a, b)| (a + b).max(0.0)).collect()
+    }
+
+    #[test]
+    fn winograd_steps_match_the_definition_on_any_thread_count() {
+        let (bundle, weights, x) = winograd_block();
+        let plan = Plan::new(&bundle, Isa::detect().unwrap());
+        let routes: Vec<bool> = plan
+            .steps
+            .iter()
+            .filter_map(|s| match &s.kind {
+                StepKind::Conv(c) => Some(matches!(c.kind, ConvKind::Winograd(_))),
+                _ => None,
+            })
+            .collect();
+        assert_eq!(routes, [true, true], "both convolutions by Winograd");
+        let want = winograd_block_reference(&weights, &x);
+        let scale = want.iter().fold(1.0f64, |m, v| m.max(v.abs()));
+        let run = |team: Team<'_>| {
+            let mut out = vec![0.0; plan.output_len()];
+            plan.run_in_slices(&x, 1, &mut Workspace::new(), &mut out, 1, team);
+            out
+        };
+        let alone = run(None);
+        for (k, (&got, &w)) in alone.iter().zip(&want).enumerate() {
+            // The project's tolerance rule (tests/reference/README.md).
+            assert!(
+                (f64::from(got) - w).abs() <= 1e-4 * scale,
+                "output {k}: {got} vs {w}"
+            );
+        }
+        let bits = |v: &[f32]| v.iter().map(|f| f.to_bits()).collect::<Vec<_>>();
+        for threads in [2, 3] {
+            let pool = rayon_core::ThreadPoolBuilder::new()
+                .num_threads(threads)
+                .build()
+                .unwrap();
+            let spread = pool.install(|| run(Some(&pool)));
+            assert_eq!(bits(&spread), bits(&alone), "{threads} threads");
+        }
+    }
+
     /// Slicing a batch must not change a single bit of any output: the executor's batch
     /// invariance (module docs), which the PyTorch reference tests check through the public
     /// API for batches that fit one slice.

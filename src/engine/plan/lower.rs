@@ -126,17 +126,26 @@ fn conv(kind: IrKind<'_>, isa: Isa, in_shape: &[usize], out_shape: &[usize]) -> 
 /// the route (3×3, stride 1, one group), and have channels enough on both sides that the
 /// input transform (shared by all output channels) and the output transform (shared by all
 /// input channels) cost little next to the multiply-adds they save.
+///
+/// Its 36 GEMMs have one column per 4×4 tile, so a small plane makes them short: they pay
+/// when there are tiles enough, or channels enough that even a few columns carry real work.
 fn winograd_pays(geom: &ConvGeom, groups: usize, out_c: usize) -> bool {
+    let tiles = geom.out_h.div_ceil(winograd::TILE) * geom.out_w.div_ceil(winograd::TILE);
     winograd::fits(geom, groups)
         && geom.in_c >= WINOGRAD_MIN_CHANNELS
         && out_c >= WINOGRAD_MIN_CHANNELS
+        && (tiles >= WINOGRAD_MIN_TILES || geom.in_c >= WINOGRAD_WIDE_CHANNELS)
 }
 
-/// See [`winograd_pays`]. Measured with `convoy bench --local`, one thread, alternating
-/// builds (AVX2, 2026-12-05): LeNet's 16 → 32 layer at 14×14 ran 10–25 % faster as one GEMM
-/// than by Winograd, ResNet-20's 16 → 16 layers at 32×32 the same either way, and ResNet-18's
-/// 64-channel and wider layers about twice as fast by Winograd.
+// The three limits of [`winograd_pays`], measured with `convoy bench --local`, one thread,
+// alternating builds (AVX2, 2026-12-05). LeNet's 16 → 32 layer at 14×14 ran 10–25 % faster as
+// one GEMM; ResNet-20's 16 → 16 layers at 32×32 the same either way; ResNet-20 ran 5–8 %
+// faster at batch 1 (15–20 % on two threads) with its 64-channel 8×8 layers (4 tiles) as one
+// GEMM; ResNet-18 ran 10–15 % slower with its 512-channel 7×7 layers (4 tiles) as one GEMM,
+// and its 64- to 256-channel layers about twice as fast by Winograd.
 const WINOGRAD_MIN_CHANNELS: usize = 32;
+const WINOGRAD_MIN_TILES: usize = 16;
+const WINOGRAD_WIDE_CHANNELS: usize = 256;
 
 /// Every kind but convolutions and binary ops.
 fn other(
