@@ -645,13 +645,18 @@ mod tests {
             },
             &[&f],
         );
-        let (graph, tensors) = b.finish(&d);
+        bundle_of("slices", b, &d, &[2, 6, 6])
+    }
+
+    /// The bundle of `b`'s graph up to `output`, with raw outputs.
+    fn bundle_of(name: &str, b: GraphBuilder, output: &str, shape: &[usize]) -> Bundle {
+        let (graph, tensors) = b.finish(output);
         let mut w = BundleWriter::new(
-            "slices",
+            name,
             "1",
             graph,
             InputSpec {
-                shape: vec![2, 6, 6],
+                shape: shape.to_vec(),
                 image: None,
             },
             OutputSpec {
@@ -696,24 +701,7 @@ mod tests {
         let c2 = conv(&mut b, "c2", &t2, None, &c1);
         let add = b.node("add", Op::Add { constant: None }, &[&c2, &x]);
         let out = b.node("relu", Op::Relu, &[&add]);
-        let (graph, tensors) = b.finish(&out);
-        let mut writer = BundleWriter::new(
-            "winograd",
-            "1",
-            graph,
-            InputSpec {
-                shape: vec![C, 16, 16],
-                image: None,
-            },
-            OutputSpec {
-                labels: Vec::new(),
-                kind: OutputKind::Logits,
-            },
-        );
-        for (name, shape, data) in tensors {
-            writer.add_tensor(name, &shape, data).unwrap();
-        }
-        let bundle = Bundle::from_bytes(writer.to_bytes().unwrap()).unwrap();
+        let bundle = bundle_of("winograd", b, &out, &[C, 16, 16]);
         let mut weights = w1;
         weights.extend(b1);
         weights.extend(w2);
