@@ -130,6 +130,7 @@ fn local_engine_per_batch_size() {
         "1,4",
         "--duration",
         "0.3",
+        "--steps",
         "--json",
     ]);
     assert_eq!(v["local"], true);
@@ -146,6 +147,51 @@ fn local_engine_per_batch_size() {
     }
     let best = v["best_images_per_s"].as_f64().unwrap();
     assert!(results.iter().any(|r| r["images_per_s"] == best), "{v}");
+    // The step profile: every step named and described, time spent, and the per-step
+    // multiply-adds add up to the bundle's own count of the network (`convoy inspect`'s).
+    assert!(v["step_passes"].as_u64().unwrap() >= 1, "{v}");
+    let steps = v["steps"].as_array().unwrap();
+    assert!(!steps.is_empty());
+    for s in steps {
+        assert!(!s["name"].as_str().unwrap().is_empty(), "{s}");
+        assert!(!s["what"].as_str().unwrap().is_empty(), "{s}");
+    }
+    assert!(
+        steps
+            .iter()
+            .any(|s| s["what"].as_str().unwrap().starts_with("conv "))
+    );
+    let seconds: f64 = steps.iter().map(|s| s["seconds"].as_f64().unwrap()).sum();
+    assert!(seconds > 0.0);
+    let work: u64 = steps
+        .iter()
+        .map(|s| s["multiply_adds"].as_u64().unwrap())
+        .sum();
+    assert_eq!(work, v["multiply_adds_per_image"].as_u64().unwrap(), "{v}");
+}
+
+#[test]
+fn local_step_profile_in_text() {
+    let bundle = Path::new(env!("CARGO_MANIFEST_DIR")).join("models/stamped-parts.cvb");
+    let out = Command::new(env!("CARGO_BIN_EXE_convoy"))
+        .args(["bench", "--local", bundle.to_str().unwrap()])
+        .args(["--batches", "2", "--duration", "0.2", "--steps"])
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let text = String::from_utf8(out.stdout).unwrap();
+    assert!(text.contains("time by step at batch 2"), "{text}");
+    assert!(text.contains("conv 3x3/1"), "{text}");
+    // --steps belongs to --local.
+    let refused = Command::new(env!("CARGO_BIN_EXE_convoy"))
+        .args(["bench", "--steps"])
+        .output()
+        .unwrap();
+    assert!(!refused.status.success());
 }
 
 #[test]

@@ -77,6 +77,10 @@ pub struct BenchArgs {
     /// With --local: the engine's threads per batch.
     #[arg(long, default_value_t = 1)]
     pub threads: usize,
+    /// With --local: also time each step of the plan at the largest batch size and list the
+    /// slowest (with --json, every step)
+    #[arg(long, requires = "local")]
+    pub steps: bool,
 }
 
 /// Width of the progress line, so a shorter line overwrites a longer one completely.
@@ -217,6 +221,7 @@ fn bench_local(args: &BenchArgs, bundle: PathBuf) -> Result<(), CliError> {
         threads: args.threads,
         duration,
         seed: args.seed,
+        steps: args.steps,
     };
     let terminal = std::io::stderr().is_terminal();
     let report = local::run_local(&config, |batch, index, count| {

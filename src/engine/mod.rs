@@ -109,6 +109,20 @@ pub struct Engine {
     spread: bool,
 }
 
+/// One step's share of [`Engine::time_steps`].
+#[derive(Clone, Debug, serde::Serialize)]
+pub struct StepTime {
+    /// The graph node the step came from (after fusion, the producing node).
+    pub name: String,
+    /// What the step does, in a few words.
+    pub what: String,
+    /// Multiply-adds of one sample, as a direct convolution counts them (0 outside
+    /// convolutions and dense layers).
+    pub multiply_adds: u64,
+    /// Time in the step over all passes.
+    pub seconds: f64,
+}
+
 /// Result of replaying a bundle's check samples.
 #[derive(Clone, Debug, PartialEq)]
 pub struct CheckReport {
@@ -192,6 +206,87 @@ impl Engine {
             .as_ref()
     }
 
+    /// The checks of [`Engine::run`].
+    fn check_input(
+        &self,
+        input: &[f32],
+        batch: usize,
+        options: RunOptions,
+    ) -> Result<(), RunError> {
+        if batch == 0 {
+            return Err(RunError::EmptyBatch);
+        }
+        if batch > self.max_batch {
+            return Err(RunError::BatchTooLarge {
+                batch,
+                limit: self.max_batch,
+            });
+        }
+        let in_len = self.plan.input_len();
+        let expected = batch.saturating_mul(in_len);
+        if input.len() != expected {
+            return Err(RunError::InputLength {
+                batch,
+                shape: self.plan.input_shape().to_vec(),
+                expected,
+                found: input.len(),
+            });
+        }
+        if options.reject_non_finite
+            && let Some(i) = input.iter().position(|v| !v.is_finite())
+        {
+            return Err(RunError::NonFinite {
+                sample: i / in_len,
+                index: i % in_len,
+            });
+        }
+        Ok(())
+    }
+
+    /// Runs `passes` batches of `batch` samples in one workspace and returns the time spent in
+    /// each step of the plan, in plan order: a profile for people tuning a model or the
+    /// engine. An engine of one thread runs on the calling thread; a larger one spreads every
+    /// step over all its threads (as it runs a batch smaller than its thread count), since a
+    /// batch split into per-thread runs would time each step several times over.
+    ///
+    /// # Errors
+    /// As [`Engine::run`].
+    pub fn time_steps(
+        &self,
+        input: &[f32],
+        batch: usize,
+        passes: usize,
+    ) -> Result<Vec<StepTime>, RunError> {
+        self.check_input(input, batch, RunOptions::default())?;
+        let mut output = vec![0.0; batch * self.plan.output_len()];
+        let mut ws = Workspace::timing_steps();
+        let pool = self.pool();
+        for _ in 0..passes {
+            match pool {
+                Some(pool) => pool.install(|| {
+                    self.plan
+                        .run_unchecked(input, batch, &mut ws, &mut output, Some(pool));
+                }),
+                None => self
+                    .plan
+                    .run_unchecked(input, batch, &mut ws, &mut output, None),
+            }
+        }
+        let times = ws.step_times();
+        Ok(self
+            .plan
+            .steps()
+            .iter()
+            .zip(times)
+            .map(|(step, time)| StepTime {
+                name: step.name.clone(),
+                what: step.describe(),
+                multiply_adds: self.plan.step_multiply_adds(step) as u64,
+                seconds: time.as_secs_f64(),
+            })
+            .collect())
+    }
+
     /// `batch` samples in one workspace, each step spread over `team`.
     fn run_pass(&self, input: &[f32], batch: usize, output: &mut [f32], team: run::Team<'_>) {
         let mut ws = self.take_workspace();
@@ -230,35 +325,9 @@ impl Engine {
         options: RunOptions,
         output: &mut [f32],
     ) -> Result<(), RunError> {
-        if batch == 0 {
-            return Err(RunError::EmptyBatch);
-        }
-        if batch > self.max_batch {
-            return Err(RunError::BatchTooLarge {
-                batch,
-                limit: self.max_batch,
-            });
-        }
-        let in_len = self.plan.input_len();
-        let out_len = self.plan.output_len();
-        let expected = batch.saturating_mul(in_len);
-        if input.len() != expected {
-            return Err(RunError::InputLength {
-                batch,
-                shape: self.plan.input_shape().to_vec(),
-                expected,
-                found: input.len(),
-            });
-        }
+        self.check_input(input, batch, options)?;
+        let (in_len, out_len) = (self.plan.input_len(), self.plan.output_len());
         assert_eq!(output.len(), batch * out_len, "output buffer length");
-        if options.reject_non_finite
-            && let Some(i) = input.iter().position(|v| !v.is_finite())
-        {
-            return Err(RunError::NonFinite {
-                sample: i / in_len,
-                index: i % in_len,
-            });
-        }
         let pool = match self.pool() {
             Some(pool) if batch >= self.threads || self.spread => pool,
             _ => {

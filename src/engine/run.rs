@@ -15,6 +15,7 @@
 //! makes the slicing invisible in the results.
 
 use std::ops::Range;
+use std::time::{Duration, Instant};
 
 use rayon_core::ThreadPool;
 
@@ -36,6 +37,8 @@ pub struct Workspace {
     dense: Vec<f32>,
     /// Sums of layer norms and reductions.
     sums: Vec<f64>,
+    /// Time spent in each step of the plan, when asked for ([`Workspace::timing_steps`]).
+    step_times: Option<Vec<Duration>>,
 }
 
 impl Workspace {
@@ -43,9 +46,26 @@ impl Workspace {
         Workspace::default()
     }
 
+    /// A workspace that adds up the time of each step of the passes it runs.
+    pub(crate) fn timing_steps() -> Workspace {
+        Workspace {
+            step_times: Some(Vec::new()),
+            ..Workspace::default()
+        }
+    }
+
+    /// Time spent in each step of the plan so far (empty unless built by
+    /// [`Workspace::timing_steps`]).
+    pub(crate) fn step_times(&self) -> &[Duration] {
+        self.step_times.as_deref().unwrap_or_default()
+    }
+
     fn prepare(&mut self, plan: &Plan, batch: usize, parts: usize) {
         if self.parts.len() < parts {
             self.parts.resize_with(parts, PartScratch::default);
+        }
+        if let Some(times) = &mut self.step_times {
+            times.resize(plan.steps.len(), Duration::ZERO);
         }
         if self.buffers.len() < plan.buffer_len.len() {
             self.buffers.resize_with(plan.buffer_len.len(), Vec::new);
@@ -162,10 +182,14 @@ impl Plan {
         ws.prepare(self, batch, team_parts(team));
         let in_len = self.value_len[self.input];
         ws.buffers[self.value_buffer[self.input]][..in_len * batch].copy_from_slice(input);
-        for step in &self.steps {
+        for (index, step) in self.steps.iter().enumerate() {
             let out_buf = self.value_buffer[step.output];
             let mut out = std::mem::take(&mut ws.buffers[out_buf]);
+            let start = ws.step_times.is_some().then(Instant::now);
             self.run_step(step, batch, ws, &mut out, team);
+            if let (Some(start), Some(times)) = (start, &mut ws.step_times) {
+                times[index] += start.elapsed();
+            }
             ws.buffers[out_buf] = out;
         }
         let out_len = self.value_len[self.output];
@@ -194,6 +218,7 @@ impl Plan {
             parts: scratches,
             dense: tmp,
             sums,
+            ..
         } = ws;
         let scratches = &mut scratches[..team_parts(team)];
         let buffers = buffers.as_slice();
@@ -670,13 +695,14 @@ mod tests {
         Bundle::from_bytes(w.to_bytes().unwrap()).unwrap()
     }
 
-    /// Two 3×3 convolutions, 32 → 32 channels at 16×16 (16 tiles: the Winograd route), the
+    /// Two 3×3 convolutions, 32 → 32 channels at 24×24 (36 tiles: the Winograd route), the
     /// second with a residual add of the block's input and a ReLU fused in: bundle, plan and
     /// runner around `kernels::winograd`.
     fn winograd_block() -> (Bundle, Vec<f32>, Vec<f32>) {
         const C: usize = 32;
+        const S: usize = 24;
         let mut rng = SplitMix64::new(21);
-        let mut b = GraphBuilder::new("x", &[C, 16, 16]);
+        let mut b = GraphBuilder::new("x", &[C, S, S]);
         let x = b.input();
         let (w1, b1) = (rng.vec(C * C * 9, -0.1, 0.1), rng.vec(C, -0.1, 0.1));
         let w2 = rng.vec(C * C * 9, -0.1, 0.1);
@@ -701,35 +727,36 @@ mod tests {
         let c2 = conv(&mut b, "c2", &t2, None, &c1);
         let add = b.node("add", Op::Add { constant: None }, &[&c2, &x]);
         let out = b.node("relu", Op::Relu, &[&add]);
-        let bundle = bundle_of("winograd", b, &out, &[C, 16, 16]);
+        let bundle = bundle_of("winograd", b, &out, &[C, S, S]);
         let mut weights = w1;
         weights.extend(b1);
         weights.extend(w2);
-        (bundle, weights, rng.vec(C * 256, -1.0, 1.0))
+        (bundle, weights, rng.vec(C * S * S, -1.0, 1.0))
     }
 
     /// The definition of the block above in double precision: 3×3 cross-correlation with zero
     /// padding 1 (common practice; PyTorch's `Conv2d` documents the same sum).
     fn winograd_block_reference(weights: &[f32], x: &[f32]) -> Vec<f64> {
         const C: usize = 32;
+        const S: usize = 24;
         let conv = |w: &[f32], x: &[f64]| {
-            let mut y = vec![0.0f64; C * 256];
+            let mut y = vec![0.0f64; C * S * S];
             for o in 0..C {
-                for oy in 0..16 {
-                    for ox in 0..16 {
+                for oy in 0..S {
+                    for ox in 0..S {
                         let mut acc = 0.0;
                         for c in 0..C {
                             for i in 0..3 {
                                 for j in 0..3 {
                                     let (iy, ix) = (oy + i, ox + j);
-                                    if (1..=16).contains(&iy) && (1..=16).contains(&ix) {
+                                    if (1..=S).contains(&iy) && (1..=S).contains(&ix) {
                                         acc += f64::from(w[((o * C + c) * 3 + i) * 3 + j])
-                                            * x[(c * 16 + iy - 1) * 16 + ix - 1];
+                                            * x[(c * S + iy - 1) * S + ix - 1];
                                     }
                                 }
                             }
                         }
-                        y[(o * 16 + oy) * 16 + ox] = acc;
+                        y[(o * S + oy) * S + ox] = acc;
                     }
                 }
             }
@@ -740,7 +767,7 @@ mod tests {
         let x: Vec<f64> = x.iter().map(|&v| f64::from(v)).collect();
         let mut y1 = conv(w1, &x);
         for (i, v) in y1.iter_mut().enumerate() {
-            *v += f64::from(b1[i / 256]);
+            *v += f64::from(b1[i / (S * S)]);
         }
         let y2 = conv(w2, &y1);
         y2.iter().zip(&x).map(|(a, b)| (a + b).max(0.0)).collect()

@@ -21,7 +21,7 @@ use super::report::number;
 use super::{LoadgenError, MAX_DURATION};
 use crate::bundle::Bundle;
 use crate::engine::kernels::peak::fma_peak;
-use crate::engine::{Engine, EngineConfig, RunOptions};
+use crate::engine::{Engine, EngineConfig, RunOptions, StepTime};
 
 /// Batch sizes measured when none are given.
 pub const DEFAULT_BATCHES: [usize; 7] = [1, 2, 4, 8, 16, 32, 64];
@@ -45,6 +45,8 @@ pub struct LocalConfig {
     /// Measured time per batch size.
     pub duration: Duration,
     pub seed: u64,
+    /// Also time each step of the plan at the largest batch size, for about `duration`.
+    pub steps: bool,
 }
 
 /// One batch size's result.
@@ -87,6 +89,16 @@ pub struct LocalReport {
     /// The single-core multiply-add peak of the engine's instruction set, measured after the
     /// batches, in billions of floating-point operations per second.
     pub fma_peak_gflops: f64,
+    /// With `steps`: time in each step of the plan, in plan order, over `step_passes` batches
+    /// of the largest size.
+    #[serde(skip_serializing_if = "Vec::is_empty")]
+    pub steps: Vec<StepTime>,
+    #[serde(skip_serializing_if = "is_zero")]
+    pub step_passes: usize,
+}
+
+fn is_zero(n: &usize) -> bool {
+    *n == 0
 }
 
 impl LocalConfig {
@@ -183,6 +195,23 @@ pub fn run_local(
             of_fma_peak: 0.0,
         });
     }
+    let (steps, step_passes) = match results.iter().find(|r| r.batch == largest) {
+        Some(r) if config.steps => {
+            // As many passes as fill about `duration` at the measured speed.
+            let per_pass = r.ms_per_batch_p50.max(1e-3) / 1e3;
+            let passes = ((config.duration.as_secs_f64() / per_pass) as usize).max(1);
+            let x = &input[..largest * in_len];
+            let steps =
+                engine
+                    .time_steps(x, largest, passes)
+                    .map_err(|source| LoadgenError::Run {
+                        batch: largest,
+                        source,
+                    })?;
+            (steps, passes)
+        }
+        _ => (Vec::new(), 0),
+    };
     let peak = fma_peak(engine.plan().isa(), PEAK_TIME).gflops;
     for r in &mut results {
         r.of_fma_peak = r.gflops / (peak * config.threads as f64);
@@ -207,6 +236,8 @@ pub fn run_local(
         peak_rss_mb: peak_rss_mb(),
         multiply_adds_per_image: multiply_adds,
         fma_peak_gflops: peak,
+        steps,
+        step_passes,
     })
 }
 
@@ -279,6 +310,68 @@ impl LocalReport {
             let _ = write!(s, "; peak resident memory {} MiB", number(mb));
         }
         let _ = writeln!(s);
+        self.render_steps(&mut s);
         s
     }
+
+    /// The slowest steps of the profile, slowest first, and what the rest add up to.
+    fn render_steps(&self, s: &mut String) {
+        use std::fmt::Write as _;
+        if self.steps.is_empty() {
+            return;
+        }
+        let total: f64 = self.steps.iter().map(|t| t.seconds).sum();
+        let batch = self.results.iter().map(|r| r.batch).max().unwrap_or(1);
+        let per_batch = |seconds: f64| seconds / self.step_passes.max(1) as f64;
+        let mut order: Vec<&StepTime> = self.steps.iter().collect();
+        order.sort_by(|a, b| b.seconds.total_cmp(&a.seconds));
+        let shown = order.len().min(SHOWN_STEPS);
+        let threads = match self.threads {
+            1 => "on one thread".to_string(),
+            n => format!("each step spread over {n} threads"),
+        };
+        let _ = writeln!(
+            s,
+            "\ntime by step at batch {batch} ({} passes, {threads}); the {shown} slowest of {} \
+             steps:",
+            self.step_passes,
+            self.steps.len()
+        );
+        let _ = writeln!(
+            s,
+            "{:>6}  {:>10}  {:>8}  {:<WHAT$}  step (graph node)",
+            "share", "ms/batch", "GFLOP/s", "what"
+        );
+        for t in &order[..shown] {
+            let gflops = if t.seconds > 0.0 && t.multiply_adds > 0 {
+                number(2.0 * (t.multiply_adds * batch as u64) as f64 / per_batch(t.seconds) / 1e9)
+            } else {
+                "-".to_string()
+            };
+            let _ = writeln!(
+                s,
+                "{:>5.1}%  {:>10}  {gflops:>8}  {:<WHAT$}  {}",
+                100.0 * t.seconds / total.max(f64::MIN_POSITIVE),
+                number(per_batch(t.seconds) * 1e3),
+                t.what,
+                t.name
+            );
+        }
+        let rest: f64 = order[shown..].iter().map(|t| t.seconds).sum();
+        if shown < order.len() {
+            let _ = writeln!(
+                s,
+                "{:>5.1}%  {:>10}  {:>8}  the other {} steps",
+                100.0 * rest / total.max(f64::MIN_POSITIVE),
+                number(per_batch(rest) * 1e3),
+                "",
+                order.len() - shown
+            );
+        }
+    }
 }
+
+/// Steps listed in the text report's profile.
+const SHOWN_STEPS: usize = 25;
+/// Width of the profile's "what" column.
+const WHAT: usize = 58;

@@ -3,6 +3,8 @@
 //! Each takes one sample's `[C, H, W]` (or flat) slice and writes one sample's output; the
 //! caller loops over the batch, so every sample is computed alone and batch invariance holds.
 
+use std::ops::Range;
+
 /// Checked geometry of a pooling window over one sample.
 #[derive(Clone, Copy, Debug)]
 pub struct PoolGeom {
@@ -36,9 +38,29 @@ pub fn max_pool(g: &PoolGeom, input: &[f32], output: &mut [f32]) {
 /// `(i, j)` in the window's row-major order, every output of the row folds in its tap, the
 /// columns whose tap falls inside the input found once per tap instead of checked per output.
 /// Each output thus folds the same taps in the same order as [`max_pool_general`] (the
-/// definition), so the same bits, and the inner loop has no bounds logic.
+/// definition), so the same bits. The input row is first dealt into `stride` phases (columns
+/// `p, p + stride, …`), so each tap reads a contiguous run and the fold vectorises.
 fn max_pool_by_rows(g: &PoolGeom, input: &[f32], output: &mut [f32]) {
     let [sy, sx] = g.stride;
+    let phase_len = g.in_w.div_ceil(sx);
+    let mut phases = vec![0.0f32; sx * phase_len];
+    // Per tap column j: where its run starts (phase, index in the phase) and the outputs
+    // `lo..hi` whose tap falls inside the input.
+    let taps: Vec<(usize, usize, Range<usize>)> = (0..g.kernel[1])
+        .filter_map(|j| {
+            // Output column ox reads input column ox·sx + shift, inside for lo..hi.
+            let shift = (j * g.dilation[1]) as isize - g.padding[1] as isize;
+            let lo = if shift >= 0 {
+                0
+            } else {
+                shift.unsigned_abs().div_ceil(sx)
+            };
+            let hi = (g.in_w as isize - shift).max(0) as usize;
+            let hi = hi.div_ceil(sx).min(g.out_w);
+            let first = ((lo * sx) as isize + shift) as usize;
+            (lo < hi).then_some((first % sx, first / sx, lo..hi))
+        })
+        .collect();
     for c in 0..g.c {
         let plane = &input[c * g.in_h * g.in_w..][..g.in_h * g.in_w];
         let out = &mut output[c * g.out_h * g.out_w..][..g.out_h * g.out_w];
@@ -52,24 +74,39 @@ fn max_pool_by_rows(g: &PoolGeom, input: &[f32], output: &mut [f32]) {
                     continue;
                 }
                 let row = &plane[y * g.in_w..][..g.in_w];
-                for j in 0..g.kernel[1] {
-                    // Output column ox reads input column ox·sx + shift, inside for lo..hi.
-                    let shift = (j * g.dilation[1]) as isize - g.padding[1] as isize;
-                    let lo = if shift >= 0 {
-                        0
-                    } else {
-                        shift.unsigned_abs().div_ceil(sx)
-                    };
-                    let hi = (g.in_w as isize - shift).max(0) as usize;
-                    let hi = hi.div_ceil(sx).min(g.out_w);
-                    if lo >= hi {
-                        continue;
-                    }
-                    let first = (lo * sx) as isize + shift;
-                    let taps = row[first as usize..].iter().step_by(sx);
-                    for (o, &v) in out_row[lo..hi].iter_mut().zip(taps) {
+                deal_into_phases(row, sx, &mut phases);
+                for (p, start, cols) in &taps {
+                    let run = &phases[p * phase_len + start..][..cols.len()];
+                    for (o, &v) in out_row[cols.clone()].iter_mut().zip(run) {
                         *o = keep_max(*o, v);
                     }
+                }
+            }
+        }
+    }
+}
+
+/// Deals `row` into `stride` phases of `phases` (each `row.len().div_ceil(stride)` long):
+/// phase `p` gets columns `p, p + stride, …`. Stride 2, the common case, in pairs.
+fn deal_into_phases(row: &[f32], stride: usize, phases: &mut [f32]) {
+    let phase_len = row.len().div_ceil(stride);
+    match stride {
+        1 => phases[..row.len()].copy_from_slice(row),
+        2 => {
+            let (even, odd) = phases.split_at_mut(phase_len);
+            let pairs = row.chunks_exact(2);
+            if let [last] = pairs.remainder() {
+                even[phase_len - 1] = *last;
+            }
+            for ((e, o), pair) in even.iter_mut().zip(odd.iter_mut()).zip(pairs) {
+                *e = pair[0];
+                *o = pair[1];
+            }
+        }
+        _ => {
+            for (p, phase) in phases.chunks_exact_mut(phase_len).enumerate() {
+                for (d, &v) in phase.iter_mut().zip(row.iter().skip(p).step_by(stride)) {
+                    *d = v;
                 }
             }
         }

@@ -127,25 +127,28 @@ fn conv(kind: IrKind<'_>, isa: Isa, in_shape: &[usize], out_shape: &[usize]) -> 
 /// input transform (shared by all output channels) and the output transform (shared by all
 /// input channels) cost little next to the multiply-adds they save.
 ///
-/// Its 36 GEMMs have one column per 4×4 tile, so a small plane makes them short: they pay
-/// when there are tiles enough, or channels enough that even a few columns carry real work.
+/// Its 36 GEMMs have one column per 4×4 tile and read four times the weights a direct GEMM
+/// does, so a small plane makes them short and the weight traffic dominates: they pay only
+/// with tiles enough to reuse each transformed weight.
 fn winograd_pays(geom: &ConvGeom, groups: usize, out_c: usize) -> bool {
     let tiles = geom.out_h.div_ceil(winograd::TILE) * geom.out_w.div_ceil(winograd::TILE);
     winograd::fits(geom, groups)
         && geom.in_c >= WINOGRAD_MIN_CHANNELS
         && out_c >= WINOGRAD_MIN_CHANNELS
-        && (tiles >= WINOGRAD_MIN_TILES || geom.in_c >= WINOGRAD_WIDE_CHANNELS)
+        && tiles >= WINOGRAD_MIN_TILES
 }
 
-// The three limits of [`winograd_pays`], measured with `convoy bench --local`, one thread,
-// alternating builds (AVX2, 2026-12-05). LeNet's 16 → 32 layer at 14×14 ran 10–25 % faster as
-// one GEMM; ResNet-20's 16 → 16 layers at 32×32 the same either way; ResNet-20 ran 5–8 %
-// faster at batch 1 (15–20 % on two threads) with its 64-channel 8×8 layers (4 tiles) as one
-// GEMM; ResNet-18 ran 10–15 % slower with its 512-channel 7×7 layers (4 tiles) as one GEMM,
-// and its 64- to 256-channel layers about twice as fast by Winograd.
+// The limits of [`winograd_pays`], measured with `convoy bench --local --steps`, one thread.
+// 2-core AVX-512 Xeon, 2026-12-05, ResNet-18 at 224 px, batch 1: its 512-channel 7×7 layers
+// (4 tiles) took 7.0–7.2 ms each by Winograd and 4.1–4.8 ms as one GEMM, its 256-channel
+// 14×14 layers (16 tiles) 4.6–4.9 ms against 2.3–2.9 ms, while its 64-channel 56×56 layers
+// (196 tiles) took 2.3–2.4 ms by Winograd against 2.8–2.9 ms; the whole network went from 13.8
+// to 19.0 images/s. (An AVX2 EPYC, the same day, had run the 512-channel layers
+// 10–15 % faster by Winograd: its caches fed the fourfold weights better.) Earlier, AVX2:
+// LeNet's 16 → 32 layer at 14×14 ran 10–25 % faster as one GEMM, ResNet-20's 16 → 16 layers
+// at 32×32 the same either way.
 const WINOGRAD_MIN_CHANNELS: usize = 32;
-const WINOGRAD_MIN_TILES: usize = 16;
-const WINOGRAD_WIDE_CHANNELS: usize = 256;
+const WINOGRAD_MIN_TILES: usize = 32;
 
 /// Every kind but convolutions and binary ops.
 fn other(

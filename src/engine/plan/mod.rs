@@ -148,6 +148,62 @@ pub(crate) struct Step {
     pub output: ValueId,
 }
 
+impl Step {
+    /// What the step does, in a few words, for people reading a profile: the kind, and for a
+    /// convolution its window, channels, output plane, route and fused epilogue.
+    pub fn describe(&self) -> String {
+        match &self.kind {
+            StepKind::Conv(conv) => {
+                let g = &conv.geom;
+                let route = match &conv.kind {
+                    ConvKind::Gemm {
+                        pointwise: true, ..
+                    } => "GEMM, input as B",
+                    ConvKind::Gemm { .. } => "GEMM",
+                    ConvKind::Depthwise(_) => "depthwise",
+                    ConvKind::Winograd(_) => "Winograd",
+                };
+                let mut text = format!(
+                    "conv {}x{}/{} {}->{} at {}x{}, {route}",
+                    g.kh, g.kw, g.stride_h, g.in_c, conv.out_c, g.out_h, g.out_w
+                );
+                if conv.groups > 1 && !matches!(conv.kind, ConvKind::Depthwise(_)) {
+                    text += &format!(", {} groups", conv.groups);
+                }
+                if conv.residual.is_some() {
+                    text += ", + residual";
+                }
+                if conv.act != Activation::Identity {
+                    text += &format!(", {:?}", conv.act);
+                }
+                text
+            }
+            StepKind::Dense {
+                weights, features, ..
+            } => format!("dense {features}->{}", weights.m()),
+            StepKind::Affine { .. } => "per-channel scale and shift".into(),
+            StepKind::Act(act) => format!("activation {act:?}"),
+            StepKind::MaxPool(p) => format!(
+                "max pool {}x{}/{} at {}x{}",
+                p.kernel[0], p.kernel[1], p.stride[0], p.out_h, p.out_w
+            ),
+            StepKind::AvgPool { geom: p, .. } => format!(
+                "average pool {}x{}/{} at {}x{}",
+                p.kernel[0], p.kernel[1], p.stride[0], p.out_h, p.out_w
+            ),
+            StepKind::GlobalAvgPool { c, plane } => format!("global average pool {c}x{plane}"),
+            StepKind::Binary { kind, .. } => format!("{kind:?}"),
+            StepKind::Concat { blocks, .. } => format!("concat of {}", blocks.len()),
+            StepKind::Copy(_) => "copy (transpose, slice, expand or tile)".into(),
+            StepKind::Gather { .. } => "gather".into(),
+            StepKind::LayerNorm { .. } => "layer norm".into(),
+            StepKind::Reduce(_) => "reduce".into(),
+            StepKind::Softmax { .. } => "softmax".into(),
+            StepKind::Pad { .. } => "pad".into(),
+        }
+    }
+}
+
 /// A ready-to-run model: immutable, shared between threads.
 pub struct Plan {
     pub(crate) isa: Isa,
@@ -262,5 +318,20 @@ impl Plan {
     /// Number of steps a batch passes through.
     pub fn step_count(&self) -> usize {
         self.steps.len()
+    }
+
+    /// The steps a batch passes through, in order.
+    pub(crate) fn steps(&self) -> &[Step] {
+        &self.steps
+    }
+
+    /// Multiply-adds of one sample in `step` (convolutions and dense layers; 0 elsewhere),
+    /// counted as a direct convolution does.
+    pub(crate) fn step_multiply_adds(&self, step: &Step) -> usize {
+        match &step.kind {
+            StepKind::Conv(conv) => conv.multiply_adds(),
+            StepKind::Dense { weights, .. } => weights.m() * self.value_len[step.inputs[0]],
+            _ => 0,
+        }
     }
 }
