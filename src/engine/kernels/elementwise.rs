@@ -42,6 +42,10 @@ pub fn apply(kind: BinaryKind, a: f32, b: f32) -> f32 {
 }
 
 /// Element-wise `a ∘ b` (or `b ∘ a` when `swapped`) into `out`, `b` lined up as `how` says.
+///
+/// The operation and the operand order are settled here, once per call, so each layout's loop
+/// is compiled for one operation and vectorises (a choice made per element measured several
+/// times slower on the per-channel scaling of squeeze-and-excitation blocks).
 pub fn binary(
     how: &Broadcast,
     kind: BinaryKind,
@@ -50,13 +54,28 @@ pub fn binary(
     b: &[f32],
     out: &mut [f32],
 ) {
-    let f = |x: f32, y: f32| {
-        if swapped {
-            apply(kind, y, x)
-        } else {
-            apply(kind, x, y)
-        }
-    };
+    macro_rules! with {
+        ($kind:path) => {
+            if swapped {
+                lined_up(how, a, b, out, |x, y| apply($kind, y, x))
+            } else {
+                lined_up(how, a, b, out, |x, y| apply($kind, x, y))
+            }
+        };
+    }
+    match kind {
+        BinaryKind::Add => with!(BinaryKind::Add),
+        BinaryKind::Sub => with!(BinaryKind::Sub),
+        BinaryKind::Mul => with!(BinaryKind::Mul),
+        BinaryKind::Div => with!(BinaryKind::Div),
+        BinaryKind::Max => with!(BinaryKind::Max),
+        BinaryKind::Min => with!(BinaryKind::Min),
+    }
+}
+
+/// `out = f(a, b)` element by element, `b` lined up as `how` says.
+#[inline(always)]
+fn lined_up(how: &Broadcast, a: &[f32], b: &[f32], out: &mut [f32], f: impl Fn(f32, f32) -> f32) {
     match how {
         Broadcast::Full => {
             for ((o, &x), &y) in out.iter_mut().zip(a).zip(b) {
