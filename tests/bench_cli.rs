@@ -10,8 +10,8 @@ use std::process::Command;
 use convoy::service::{RunningServer, ServeConfig, start};
 use serde_json::Value;
 
-/// Runs `convoy bench ARGS`, expects success and one JSON object on stdout.
-fn bench(args: &[&str]) -> Value {
+/// Runs `convoy bench ARGS`, expects success and returns stdout.
+fn bench_text(args: &[&str]) -> String {
     let out = Command::new(env!("CARGO_BIN_EXE_convoy"))
         .arg("bench")
         .args(args)
@@ -19,12 +19,14 @@ fn bench(args: &[&str]) -> Value {
         .unwrap();
     let stderr = String::from_utf8_lossy(&out.stderr);
     assert!(out.status.success(), "bench {args:?} failed: {stderr}");
-    serde_json::from_slice(&out.stdout).unwrap_or_else(|e| {
-        panic!(
-            "stdout is not one JSON object ({e}): {}",
-            String::from_utf8_lossy(&out.stdout)
-        )
-    })
+    String::from_utf8(out.stdout).unwrap()
+}
+
+/// Runs `convoy bench ARGS`, expects success and one JSON object on stdout.
+fn bench(args: &[&str]) -> Value {
+    let text = bench_text(args);
+    serde_json::from_str(&text)
+        .unwrap_or_else(|e| panic!("stdout is not one JSON object ({e}): {text}"))
 }
 
 /// The demo server (no models folder: the bundle built into the binary).
@@ -173,17 +175,15 @@ fn local_engine_per_batch_size() {
 #[test]
 fn local_step_profile_in_text() {
     let bundle = Path::new(env!("CARGO_MANIFEST_DIR")).join("models/stamped-parts.cvb");
-    let out = Command::new(env!("CARGO_BIN_EXE_convoy"))
-        .args(["bench", "--local", bundle.to_str().unwrap()])
-        .args(["--batches", "2", "--duration", "0.2", "--steps"])
-        .output()
-        .unwrap();
-    assert!(
-        out.status.success(),
-        "{}",
-        String::from_utf8_lossy(&out.stderr)
-    );
-    let text = String::from_utf8(out.stdout).unwrap();
+    let text = bench_text(&[
+        "--local",
+        bundle.to_str().unwrap(),
+        "--batches",
+        "2",
+        "--duration",
+        "0.2",
+        "--steps",
+    ]);
     assert!(text.contains("time by step at batch 2"), "{text}");
     assert!(text.contains("conv 3x3/1"), "{text}");
     // --steps belongs to --local.

@@ -196,20 +196,7 @@ pub fn run_local(
         });
     }
     let (steps, step_passes) = match results.iter().find(|r| r.batch == largest) {
-        Some(r) if config.steps => {
-            // As many passes as fill about `duration` at the measured speed.
-            let per_pass = r.ms_per_batch_p50.max(1e-3) / 1e3;
-            let passes = ((config.duration.as_secs_f64() / per_pass) as usize).max(1);
-            let x = &input[..largest * in_len];
-            let steps =
-                engine
-                    .time_steps(x, largest, passes)
-                    .map_err(|source| LoadgenError::Run {
-                        batch: largest,
-                        source,
-                    })?;
-            (steps, passes)
-        }
+        Some(r) if config.steps => profile_steps(&engine, &input, r, config.duration)?,
         _ => (Vec::new(), 0),
     };
     let peak = fma_peak(engine.plan().isa(), PEAK_TIME).gflops;
@@ -239,6 +226,24 @@ pub fn run_local(
         steps,
         step_passes,
     })
+}
+
+/// Times every step of the plan at `measured`'s batch size, over as many passes as fill about
+/// `duration` at its measured speed; returns the step times and the passes.
+fn profile_steps(
+    engine: &Engine,
+    input: &[f32],
+    measured: &LocalResult,
+    duration: Duration,
+) -> Result<(Vec<StepTime>, usize), LoadgenError> {
+    let batch = measured.batch;
+    let per_pass = measured.ms_per_batch_p50.max(1e-3) / 1e3;
+    let passes = ((duration.as_secs_f64() / per_pass) as usize).max(1);
+    let x = &input[..batch * engine.plan().input_len()];
+    let steps = engine
+        .time_steps(x, batch, passes)
+        .map_err(|source| LoadgenError::Run { batch, source })?;
+    Ok((steps, passes))
 }
 
 /// The process's peak resident memory so far, in MiB (Linux: `VmHWM` of /proc/self/status,
