@@ -10,9 +10,9 @@
 //!
 //! Threads: an engine of more than one thread starts a pool of that many on its first batch
 //! and keeps it until dropped, so a batch costs wake-ups rather than thread starts. A batch of
-//! at least as many samples as threads is split into contiguous runs of samples, one per
-//! thread, each in its own workspace: samples never interact, so nothing synchronises inside
-//! the batch, and the calling thread computes the first run. A smaller batch (one image, most
+//! at least as many samples as threads is split into contiguous runs of samples, several per
+//! thread, each in its own workspace, which the calling thread and the pool's take as they come
+//! free: samples never interact, so nothing synchronises inside the batch but the hand-out. A smaller batch (one image, most
 //! often) runs on the pool as one pass whose convolutions are each spread over all threads
 //! (see [`run`]), unless the network is so small that handing it over costs more than it
 //! saves. Either way, results are bitwise the same for any thread count.
@@ -21,7 +21,8 @@ pub mod kernels;
 pub mod plan;
 pub mod run;
 
-use std::sync::{Mutex, OnceLock};
+use std::sync::atomic::{AtomicUsize, Ordering};
+use std::sync::{Mutex, OnceLock, PoisonError};
 
 use rayon_core::{ThreadPool, ThreadPoolBuilder};
 use thiserror::Error;
@@ -122,6 +123,14 @@ pub struct StepTime {
     /// Time in the step over all passes.
     pub seconds: f64,
 }
+
+/// One run's input and output, until a thread takes it.
+type RunSlices<'a> = (&'a [f32], &'a mut [f32]);
+
+/// Runs of samples per thread a batch is cut into (see `Engine::run_shared_out`): enough that a
+/// slowed thread costs a fraction of a run, few enough that each run still batches its dense
+/// layers.
+const RUNS_PER_THREAD: usize = 4;
 
 /// Result of replaying a bundle's check samples.
 #[derive(Clone, Debug, PartialEq)]
@@ -326,8 +335,11 @@ impl Engine {
         output: &mut [f32],
     ) -> Result<(), RunError> {
         self.check_input(input, batch, options)?;
-        let (in_len, out_len) = (self.plan.input_len(), self.plan.output_len());
-        assert_eq!(output.len(), batch * out_len, "output buffer length");
+        assert_eq!(
+            output.len(),
+            batch * self.plan.output_len(),
+            "output buffer length"
+        );
         let pool = match self.pool() {
             Some(pool) if batch >= self.threads || self.spread => pool,
             _ => {
@@ -340,31 +352,40 @@ impl Engine {
             pool.install(|| self.run_pass(input, batch, output, Some(pool)));
             return Ok(());
         }
-        // Contiguous runs of samples, the first ones one sample longer when it does not divide.
-        let parts = self.threads;
-        let base = batch / parts;
-        let extra = batch % parts;
-        let mut runs = Vec::with_capacity(parts);
-        let mut rest_in = input;
-        let mut rest_out = &mut *output;
-        for p in 0..parts {
-            let n = base + usize::from(p < extra);
-            let (i, ri) = rest_in.split_at(n * in_len);
-            let (o, ro) = std::mem::take(&mut rest_out).split_at_mut(n * out_len);
-            rest_in = ri;
-            rest_out = ro;
-            runs.push((i, o, n));
-        }
-        let mut runs = runs.into_iter();
-        // `parts >= 2`, so there is a first run.
-        let (i, o, n) = runs.next().expect("at least two runs");
-        pool.in_place_scope(|scope| {
-            for (i, o, n) in runs {
-                scope.spawn(move |_| self.run_pass(i, n, o, None));
-            }
-            self.run_pass(i, n, o, None);
-        });
+        self.run_shared_out(pool, input, batch, output);
         Ok(())
+    }
+
+    /// A batch of at least as many samples as threads: cut into contiguous runs of samples,
+    /// several per thread ([`RUNS_PER_THREAD`]), which the calling thread and `threads - 1` of
+    /// the pool's take one at a time as they come free. On a shared machine a core slowed by
+    /// its neighbours then takes fewer runs instead of holding up the whole batch. Samples
+    /// never interact and each run has its own workspace, so which thread takes which run
+    /// changes no result.
+    fn run_shared_out(&self, pool: &ThreadPool, input: &[f32], batch: usize, output: &mut [f32]) {
+        let (in_len, out_len) = (self.plan.input_len(), self.plan.output_len());
+        let len = batch.div_ceil(self.threads * RUNS_PER_THREAD).max(1);
+        let runs: Vec<Mutex<Option<RunSlices<'_>>>> = input
+            .chunks(len * in_len)
+            .zip(output.chunks_mut(len * out_len))
+            .map(|run| Mutex::new(Some(run)))
+            .collect();
+        let next = AtomicUsize::new(0);
+        let take_runs = || {
+            while let Some(slot) = runs.get(next.fetch_add(1, Ordering::Relaxed)) {
+                // A poisoned lock only means a run panicked; its slot is still valid.
+                let run = slot.lock().unwrap_or_else(PoisonError::into_inner).take();
+                if let Some((i, o)) = run {
+                    self.run_pass(i, i.len() / in_len, o, None);
+                }
+            }
+        };
+        pool.in_place_scope(|scope| {
+            for _ in 1..self.threads {
+                scope.spawn(|_| take_runs());
+            }
+            take_runs();
+        });
     }
 
     /// Replays the bundle's check samples and compares with the stored outputs.
