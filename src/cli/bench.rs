@@ -78,7 +78,7 @@ pub struct BenchArgs {
     #[arg(long, default_value_t = 1)]
     pub threads: usize,
     /// With --local: also time each step of the plan at the largest batch size and list the
-    /// slowest (with --json, every step)
+    /// slowest (with --json, every step).
     #[arg(long, requires = "local")]
     pub steps: bool,
 }

@@ -12,10 +12,10 @@
 //! and keeps it until dropped, so a batch costs wake-ups rather than thread starts. A batch of
 //! at least as many samples as threads is split into contiguous runs of samples, several per
 //! thread, each in its own workspace, which the calling thread and the pool's take as they come
-//! free: samples never interact, so nothing synchronises inside the batch but the hand-out. A smaller batch (one image, most
-//! often) runs on the pool as one pass whose convolutions are each spread over all threads
-//! (see [`run`]), unless the network is so small that handing it over costs more than it
-//! saves. Either way, results are bitwise the same for any thread count.
+//! free: samples never interact, so nothing synchronises inside the batch but the hand-out. A
+//! smaller batch (one image, most often) runs on the pool as one pass whose convolutions are
+//! each spread over all threads (see [`run`]), unless the network is so small that handing it
+//! over costs more than it saves. Either way, results are bitwise the same for any thread count.
 
 pub mod kernels;
 pub mod plan;

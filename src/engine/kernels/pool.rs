@@ -39,11 +39,12 @@ pub fn max_pool(g: &PoolGeom, input: &[f32], output: &mut [f32]) {
 /// columns whose tap falls inside the input found once per tap instead of checked per output.
 /// Each output thus folds the same taps in the same order as [`max_pool_general`] (the
 /// definition), so the same bits. The input row is first dealt into `stride` phases (columns
-/// `p, p + stride, …`), so each tap reads a contiguous run and the fold vectorises.
+/// `p, p + stride, …`; see [`in_phases`]), so each tap reads a contiguous run and the fold
+/// vectorises.
 fn max_pool_by_rows(g: &PoolGeom, input: &[f32], output: &mut [f32]) {
     let [sy, sx] = g.stride;
     let phase_len = g.in_w.div_ceil(sx);
-    let mut phases = vec![0.0f32; sx * phase_len];
+    let mut phases = Vec::new();
     // Per tap column j: where its run starts (phase, index in the phase) and the outputs
     // `lo..hi` whose tap falls inside the input.
     let taps: Vec<(usize, usize, Range<usize>)> = (0..g.kernel[1])
@@ -74,7 +75,7 @@ fn max_pool_by_rows(g: &PoolGeom, input: &[f32], output: &mut [f32]) {
                     continue;
                 }
                 let row = &plane[y * g.in_w..][..g.in_w];
-                deal_into_phases(row, sx, &mut phases);
+                let phases = in_phases(row, sx, &mut phases);
                 for (p, start, cols) in &taps {
                     let run = &phases[p * phase_len + start..][..cols.len()];
                     for (o, &v) in out_row[cols.clone()].iter_mut().zip(run) {
@@ -86,31 +87,33 @@ fn max_pool_by_rows(g: &PoolGeom, input: &[f32], output: &mut [f32]) {
     }
 }
 
-/// Deals `row` into `stride` phases of `phases` (each `row.len().div_ceil(stride)` long):
-/// phase `p` gets columns `p, p + stride, …`. Stride 2, the common case, in pairs.
-fn deal_into_phases(row: &[f32], stride: usize, phases: &mut [f32]) {
+/// `row` dealt into `stride` phases, each `row.len().div_ceil(stride)` long, one after the
+/// other: phase `p` holds columns `p, p + stride, …`. Stride 1 is the row itself; otherwise
+/// the phases are written into `buf`. Stride 2, the common case, goes in pairs.
+fn in_phases<'a>(row: &'a [f32], stride: usize, buf: &'a mut Vec<f32>) -> &'a [f32] {
+    if stride == 1 {
+        return row;
+    }
     let phase_len = row.len().div_ceil(stride);
-    match stride {
-        1 => phases[..row.len()].copy_from_slice(row),
-        2 => {
-            let (even, odd) = phases.split_at_mut(phase_len);
-            let pairs = row.chunks_exact(2);
-            if let [last] = pairs.remainder() {
-                even[phase_len - 1] = *last;
-            }
-            for ((e, o), pair) in even.iter_mut().zip(odd.iter_mut()).zip(pairs) {
-                *e = pair[0];
-                *o = pair[1];
-            }
+    buf.resize(stride * phase_len, 0.0);
+    if stride == 2 {
+        let (even, odd) = buf.split_at_mut(phase_len);
+        let pairs = row.chunks_exact(2);
+        if let [last] = pairs.remainder() {
+            even[phase_len - 1] = *last;
         }
-        _ => {
-            for (p, phase) in phases.chunks_exact_mut(phase_len).enumerate() {
-                for (d, &v) in phase.iter_mut().zip(row.iter().skip(p).step_by(stride)) {
-                    *d = v;
-                }
+        for ((e, o), pair) in even.iter_mut().zip(odd.iter_mut()).zip(pairs) {
+            *e = pair[0];
+            *o = pair[1];
+        }
+    } else {
+        for (p, phase) in buf.chunks_exact_mut(phase_len).enumerate() {
+            for (d, &v) in phase.iter_mut().zip(row.iter().skip(p).step_by(stride)) {
+                *d = v;
             }
         }
     }
+    buf
 }
 
 /// Any window, stride, dilation and padding, one output at a time; taps outside the input
