@@ -10,9 +10,13 @@
 //! `kernels::gemm`), so the results do not depend on the thread count. The other steps are
 //! cheap next to the convolutions and run on the thread that runs the pass.
 //!
-//! Memory: a batch goes through the plan in slices of at most [`Plan::slice_samples`] samples,
-//! so a workspace holds the activations of one slice, not of the whole batch. Batch invariance
-//! makes the slicing invisible in the results.
+//! Memory and order: a batch goes through the plan in slices of at most
+//! [`Plan::slice_samples`] samples, so a workspace holds the activations of one slice, not of
+//! the whole batch. Within a slice, the head of the plan runs a chunk of samples at a time
+//! (large activations, small weights: they stay in cache from step to step) and the tail runs
+//! the whole slice at once (small activations, large weights: read once per slice rather than
+//! once per sample); see `plan::Segments`. Batch invariance makes slices and chunks invisible
+//! in the results.
 
 use std::ops::Range;
 use std::time::{Duration, Instant};
@@ -60,19 +64,26 @@ impl Workspace {
         self.step_times.as_deref().unwrap_or_default()
     }
 
-    fn prepare(&mut self, plan: &Plan, batch: usize, parts: usize) {
+    /// Buffers for a pass of `batch` samples whose head goes `chunk` samples at a time.
+    fn prepare(&mut self, plan: &Plan, (batch, chunk): (usize, usize), parts: usize) {
         if self.parts.len() < parts {
             self.parts.resize_with(parts, PartScratch::default);
         }
         if let Some(times) = &mut self.step_times {
             times.resize(plan.steps.len(), Duration::ZERO);
         }
-        if self.buffers.len() < plan.buffer_len.len() {
-            self.buffers.resize_with(plan.buffer_len.len(), Vec::new);
+        let seg = &plan.segments;
+        if self.buffers.len() < seg.head_len.len() {
+            self.buffers.resize_with(seg.head_len.len(), Vec::new);
         }
-        for (buf, &len) in self.buffers.iter_mut().zip(&plan.buffer_len) {
-            if buf.len() < len * batch {
-                buf.resize(len * batch, 0.0);
+        for (buf, (&head, &tail)) in self
+            .buffers
+            .iter_mut()
+            .zip(seg.head_len.iter().zip(&seg.tail_len))
+        {
+            let need = (head * chunk).max(tail * batch);
+            if buf.len() < need {
+                buf.resize(need, 0.0);
             }
         }
     }
@@ -86,16 +97,31 @@ struct PartScratch {
     winograd: Vec<f32>,
 }
 
-/// Target size, in floats, of a workspace's value buffers (4 MiB, the order of a core's L2
-/// cache). A slice of samples this large keeps a small network's batch together (LeNet at
-/// 28×28 needs about 16 K floats per sample, so 66 samples fit), which lets its dense layers
-/// run as one matrix multiply over the slice; a large network (MobileNetV2 at 224×224, about
-/// 2.1 M floats per sample) runs one sample at a time instead of holding 270 MB for a batch of
-/// 32. Measured with `convoy bench --local` at batch 32 on one thread (2-core AVX-512 server):
-/// MobileNetV2 ran about 15% faster one sample at a time than the whole batch at once (its
-/// activations stay in cache from layer to layer); LeNet lost about 13% one sample at a time
-/// (matrix-vector dense layers) and none at 32; ResNet-20 was flat.
-const WORKSPACE_FLOATS: usize = 1 << 20;
+/// Target size, in floats, of a workspace's buffers for the head of a pass (4 MiB, the order
+/// of a core's L2 cache; see `Segments`). A chunk of samples this large keeps a small
+/// network's batch together (LeNet at 28×28 needs about 16 K floats per sample, so 66 samples
+/// fit); a large network's head (MobileNetV2 at 224×224, about 2.1 M floats per sample) runs
+/// one sample at a time instead of holding 270 MB for a batch of 32. Measured with `convoy
+/// bench --local` at batch 32 on one thread (2-core AVX-512 server): MobileNetV2 ran about 15%
+/// faster one sample at a time than the whole batch at once (its activations stay in cache
+/// from layer to layer); LeNet lost about 13% one sample at a time (matrix-vector dense
+/// layers) and none at 32; ResNet-20 was flat.
+const HEAD_FLOATS: usize = 1 << 20;
+
+/// Target size, in floats, of the buffers for the tail of a pass (16 MiB): tens of samples of
+/// the small late activations, so that each tail layer reads its weights once for all of them.
+/// Measured (2026-12-05, same server, batch 32, one thread): ResNet-18's 512-channel 7×7
+/// layers, whose 9.4 MB of weights were read once per sample, ran at 63–70 GFLOP/s one sample
+/// at a time and 96–104 with the batch together; MobileNetV2, EfficientNet-B0 and ShuffleNetV2
+/// lost 5–15% when their whole network took the batch together, hence the head.
+const TAIL_FLOATS: usize = 1 << 22;
+
+/// The samples a step runs over: `count` of them from sample `first` of the pass.
+#[derive(Clone, Copy, Debug)]
+struct Samples {
+    first: usize,
+    count: usize,
+}
 
 /// The threads one pass may spread a step over: the pool's, from inside the pool (the engine
 /// runs such a pass with `ThreadPool::install`). `None`: the calling thread alone.
@@ -121,11 +147,22 @@ impl Plan {
         total >= 10_000_000
     }
 
-    /// Samples one pass through the plan handles at most: as many as fit the workspace
-    /// budget, at least one.
+    /// Samples the head of a pass takes at a time: as many as fit [`HEAD_FLOATS`], at least
+    /// one.
+    fn chunk_samples(&self) -> usize {
+        let per_sample: usize = self.segments.head_len.iter().sum();
+        (HEAD_FLOATS / per_sample.max(1)).max(1)
+    }
+
+    /// Samples one pass through the plan handles at most: as many as the tail's buffers fit
+    /// in [`TAIL_FLOATS`], and at least a head chunk.
     pub fn slice_samples(&self) -> usize {
-        let per_sample: usize = self.buffer_len.iter().sum();
-        (WORKSPACE_FLOATS / per_sample.max(1)).max(1)
+        let chunk = self.chunk_samples();
+        if self.segments.cut == self.steps.len() {
+            return chunk;
+        }
+        let per_sample: usize = self.segments.tail_len.iter().sum();
+        (TAIL_FLOATS / per_sample.max(1)).max(chunk)
     }
 
     /// Runs `batch` samples laid out back to back in `input` and writes the graph output of
@@ -138,21 +175,23 @@ impl Plan {
         output: &mut [f32],
         team: Team<'_>,
     ) {
-        self.run_in_slices(input, batch, ws, output, self.slice_samples(), team);
+        let sizes = (self.slice_samples(), self.chunk_samples());
+        self.run_in_slices(input, batch, ws, output, sizes, team);
     }
 
-    /// [`Plan::run_unchecked`] with the slice size given (tests force small ones).
+    /// [`Plan::run_unchecked`] with the slice and head chunk sizes given (tests force small
+    /// ones).
     fn run_in_slices(
         &self,
         input: &[f32],
         batch: usize,
         ws: &mut Workspace,
         output: &mut [f32],
-        slice: usize,
+        (slice, chunk): (usize, usize),
         team: Team<'_>,
     ) {
         if batch <= slice {
-            return self.run_slice(input, batch, ws, output, team);
+            return self.run_slice(input, (batch, chunk), ws, output, team);
         }
         let in_len = self.value_len[self.input];
         let out_len = self.value_len[self.output];
@@ -161,7 +200,7 @@ impl Plan {
             let n = slice.min(batch - start);
             self.run_slice(
                 &input[start * in_len..(start + n) * in_len],
-                n,
+                (n, chunk),
                 ws,
                 &mut output[start * out_len..(start + n) * out_len],
                 team,
@@ -170,34 +209,75 @@ impl Plan {
         }
     }
 
-    /// One pass of at most `slice_samples` samples.
+    /// One pass of at most `slice_samples` samples: the head chunk by chunk, then the tail
+    /// over all of them.
     fn run_slice(
         &self,
         input: &[f32],
-        batch: usize,
+        (batch, chunk): (usize, usize),
         ws: &mut Workspace,
         output: &mut [f32],
         team: Team<'_>,
     ) {
-        ws.prepare(self, batch, team_parts(team));
+        let seg = &self.segments;
+        let chunk = chunk.clamp(1, batch.max(1));
+        ws.prepare(self, (batch, chunk), team_parts(team));
         let in_len = self.value_len[self.input];
-        ws.buffers[self.value_buffer[self.input]][..in_len * batch].copy_from_slice(input);
-        for (index, step) in self.steps.iter().enumerate() {
+        let in_buf = self.value_buffer[self.input];
+        if seg.whole[self.input] {
+            ws.buffers[in_buf][..in_len * batch].copy_from_slice(input);
+        }
+        if seg.cut > 0 {
+            for first in (0..batch).step_by(chunk) {
+                let samples = Samples {
+                    first,
+                    count: chunk.min(batch - first),
+                };
+                if !seg.whole[self.input] {
+                    let part = &input[first * in_len..][..samples.count * in_len];
+                    ws.buffers[in_buf][..part.len()].copy_from_slice(part);
+                }
+                self.run_steps(0..seg.cut, samples, ws, team);
+            }
+        }
+        let all = Samples {
+            first: 0,
+            count: batch,
+        };
+        self.run_steps(seg.cut..self.steps.len(), all, ws, team);
+        output.copy_from_slice(self.value(&ws.buffers, self.output, all));
+    }
+
+    /// Steps `range` over `samples`.
+    fn run_steps(&self, range: Range<usize>, samples: Samples, ws: &mut Workspace, team: Team<'_>) {
+        for (index, step) in self.steps[range.clone()].iter().enumerate() {
             let out_buf = self.value_buffer[step.output];
             let mut out = std::mem::take(&mut ws.buffers[out_buf]);
             let start = ws.step_times.is_some().then(Instant::now);
-            self.run_step(step, batch, ws, &mut out, team);
+            let at = self.offset(step.output, samples);
+            let out_len = self.value_len[step.output];
+            let dst = &mut out[at..][..out_len * samples.count];
+            self.run_step(step, samples, ws, dst, team);
             if let (Some(start), Some(times)) = (start, &mut ws.step_times) {
-                times[index] += start.elapsed();
+                times[range.start + index] += start.elapsed();
             }
             ws.buffers[out_buf] = out;
         }
-        let out_len = self.value_len[self.output];
-        output.copy_from_slice(&ws.buffers[self.value_buffer[self.output]][..out_len * batch]);
     }
 
-    fn value<'a>(&self, buffers: &'a [Vec<f32>], v: usize, batch: usize) -> &'a [f32] {
-        &buffers[self.value_buffer[v]][..self.value_len[v] * batch]
+    /// Where `samples` of value `v` start in its buffer: values kept whole across the cut hold
+    /// every sample of the pass, the others only the current chunk.
+    fn offset(&self, v: usize, samples: Samples) -> usize {
+        if self.segments.whole[v] {
+            samples.first * self.value_len[v]
+        } else {
+            0
+        }
+    }
+
+    fn value<'a>(&self, buffers: &'a [Vec<f32>], v: usize, samples: Samples) -> &'a [f32] {
+        let at = self.offset(v, samples);
+        &buffers[self.value_buffer[v]][at..][..self.value_len[v] * samples.count]
     }
 
     /// One step over the slice: convolutions and dense layers (which use the GEMM scratch),
@@ -205,14 +285,14 @@ impl Plan {
     fn run_step(
         &self,
         step: &super::plan::Step,
-        batch: usize,
+        samples: Samples,
         ws: &mut Workspace,
         out: &mut [f32],
         team: Team<'_>,
     ) {
+        let batch = samples.count;
         let out_len = self.value_len[step.output];
         let in_len = self.value_len[step.inputs[0]];
-        let out = &mut out[..out_len * batch];
         let Workspace {
             buffers,
             parts: scratches,
@@ -222,10 +302,10 @@ impl Plan {
         } = ws;
         let scratches = &mut scratches[..team_parts(team)];
         let buffers = buffers.as_slice();
-        let input = self.value(buffers, step.inputs[0], batch);
+        let input = self.value(buffers, step.inputs[0], samples);
         match &step.kind {
             StepKind::Conv(conv) => {
-                let residual = conv.residual.map(|r| self.value(buffers, r, batch));
+                let residual = conv.residual.map(|r| self.value(buffers, r, samples));
                 for s in 0..batch {
                     run_conv(
                         conv,
@@ -267,7 +347,7 @@ impl Plan {
                     Some(c) => (c.as_slice(), 0),
                     None => {
                         let v = step.inputs[1];
-                        (self.value(buffers, v, batch), self.value_len[v])
+                        (self.value(buffers, v, samples), self.value_len[v])
                     }
                 };
                 let b_used = if constant.is_some() { b.len() } else { b_len };
@@ -284,7 +364,7 @@ impl Plan {
                 }
             }
             StepKind::Concat { outer, blocks } => {
-                self.concat(&step.inputs, (*outer, blocks), buffers, batch, out);
+                self.concat(&step.inputs, (*outer, blocks), buffers, samples, out);
             }
             StepKind::Act(a) => {
                 out.copy_from_slice(input);
@@ -311,16 +391,17 @@ impl Plan {
         inputs: &[usize],
         (outer, blocks): (usize, &[usize]),
         buffers: &[Vec<f32>],
-        batch: usize,
+        samples: Samples,
         out: &mut [f32],
     ) {
+        let batch = samples.count;
         let out_len = out.len() / batch;
         let mut parts: Vec<(&[f32], usize)> = Vec::with_capacity(blocks.len());
         for s in 0..batch {
             parts.clear();
             for (&v, &block) in inputs.iter().zip(blocks) {
                 let len = self.value_len[v];
-                parts.push((&self.value(buffers, v, batch)[s * len..][..len], block));
+                parts.push((&self.value(buffers, v, samples)[s * len..][..len], block));
             }
             layout::concat(outer, &parts, &mut out[s * out_len..][..out_len]);
         }
@@ -790,7 +871,7 @@ mod tests {
         let scale = want.iter().fold(1.0f64, |m, v| m.max(v.abs()));
         let run = |team: Team<'_>| {
             let mut out = vec![0.0; plan.output_len()];
-            plan.run_in_slices(&x, 1, &mut Workspace::new(), &mut out, 1, team);
+            plan.run_in_slices(&x, 1, &mut Workspace::new(), &mut out, (1, 1), team);
             out
         };
         let alone = run(None);
@@ -812,28 +893,103 @@ mod tests {
         }
     }
 
-    /// Slicing a batch must not change a single bit of any output: the executor's batch
-    /// invariance (module docs), which the PyTorch reference tests check through the public
-    /// API for batches that fit one slice.
+    /// Slicing a batch, and chunking the head of a pass, must not change a single bit of any
+    /// output: the executor's batch invariance (module docs), which the PyTorch reference
+    /// tests check through the public API for batches that fit one slice.
     #[test]
     fn slices_do_not_change_results() {
-        let bundle = small_net();
-        let plan = Plan::new(&bundle, Isa::detect().unwrap());
-        let batch = 7;
-        let x = SplitMix64::new(9).vec(batch * plan.input_len(), -1.0, 1.0);
-        let run = |slice: usize| {
-            let mut out = vec![0.0; batch * plan.output_len()];
-            plan.run_in_slices(&x, batch, &mut Workspace::new(), &mut out, slice, None);
-            out.iter().map(|v| v.to_bits()).collect::<Vec<_>>()
-        };
-        let whole = run(batch);
-        for slice in [1, 2, 3, 6] {
-            assert_eq!(run(slice), whole, "slices of {slice}");
+        for bundle in [small_net(), residual_across_the_cut()] {
+            let plan = Plan::new(&bundle, Isa::detect().unwrap());
+            let batch = 7;
+            let x = SplitMix64::new(9).vec(batch * plan.input_len(), -1.0, 1.0);
+            let run = |sizes: (usize, usize)| {
+                let mut out = vec![0.0; batch * plan.output_len()];
+                plan.run_in_slices(&x, batch, &mut Workspace::new(), &mut out, sizes, None);
+                out.iter().map(|v| v.to_bits()).collect::<Vec<_>>()
+            };
+            let whole = run((batch, batch));
+            for slice in [1, 2, 3, 6] {
+                for chunk in 1..=slice {
+                    assert_eq!(
+                        run((slice, chunk)),
+                        whole,
+                        "slices of {slice}, chunks of {chunk}"
+                    );
+                }
+            }
+            assert!(
+                plan.slice_samples() >= batch,
+                "a small net keeps its batch together"
+            );
         }
-        assert!(
-            plan.slice_samples() >= batch,
-            "a small net keeps its batch together"
+    }
+
+    /// A light convolution (few weights, larger activations) whose output a heavy one reads
+    /// both as input and as fused residual, then a dense layer: the cut falls between the two
+    /// convolutions and the light one's output crosses it.
+    fn residual_across_the_cut() -> Bundle {
+        let mut rng = SplitMix64::new(6);
+        let mut b = GraphBuilder::new("x", &[2, 8, 8]);
+        let x = b.input();
+        let conv =
+            |b: &mut GraphBuilder, rng: &mut SplitMix64, name: &str, in_c, stride, x: &str| {
+                let n = 16 * in_c * 9;
+                let w = b.tensor(
+                    &format!("{name}.w"),
+                    &[16, in_c, 3, 3],
+                    rng.vec(n, -0.3, 0.3),
+                );
+                b.node(
+                    name,
+                    Op::Conv2d {
+                        weight: w,
+                        bias: None,
+                        stride: [stride, stride],
+                        dilation: [1, 1],
+                        padding: [1; 4],
+                        groups: 1,
+                    },
+                    &[x],
+                )
+            };
+        let c1 = conv(&mut b, &mut rng, "light", 2, 2, &x);
+        let c2 = conv(&mut b, &mut rng, "heavy", 16, 1, &c1);
+        let sum = b.node("add", Op::Add { constant: None }, &[&c2, &c1]);
+        let f = b.node("flatten", Op::Flatten, &[&sum]);
+        let dw = b.tensor("fc.w", &[5, 256], rng.vec(1280, -0.1, 0.1));
+        let d = b.node(
+            "fc",
+            Op::Dense {
+                weight: dw,
+                bias: None,
+                weight_layout: Default::default(),
+            },
+            &[&f],
         );
+        bundle_of("cut", b, &d, &[2, 8, 8])
+    }
+
+    /// The cut falls after the last layer whose weights do not outweigh its activations, and
+    /// the values read across it are kept whole, each in a buffer no other value uses.
+    #[test]
+    fn the_cut_keeps_crossing_values_whole() {
+        let plan = Plan::new(&residual_across_the_cut(), Isa::Scalar);
+        let seg = &plan.segments;
+        let names: Vec<&str> = plan.steps.iter().map(|s| s.name.as_str()).collect();
+        assert_eq!(seg.cut, 1, "steps {names:?}");
+        let light = plan.steps[0].output;
+        assert!(
+            seg.whole[light],
+            "the light convolution's output crosses the cut"
+        );
+        assert!(!seg.whole[plan.input], "the input is read in the head only");
+        let own = plan.value_buffer[light];
+        let sharing = (0..plan.value_len.len())
+            .filter(|&v| plan.value_buffer[v] == own)
+            .count();
+        assert_eq!(sharing, 1, "a crossing value has its buffer to itself");
+        assert_eq!(seg.head_len[own], 0);
+        assert_eq!(seg.tail_len[own], plan.value_len[light]);
     }
 
     /// The parts a step is spread over cover its units exactly once, in order, with inner

@@ -1,7 +1,7 @@
 //! Lowering: internal nodes to kernel steps with packed weights, and the buffer layout.
 
 use super::fuse::{IrKind, IrNode};
-use super::{ConvKind, ConvStep, Plan, Step, StepKind, ValueId};
+use super::{ConvKind, ConvStep, Plan, Segments, Step, StepKind, ValueId};
 use crate::engine::kernels::depthwise::PackedDepthwise;
 use crate::engine::kernels::elementwise::Broadcast;
 use crate::engine::kernels::gemm::{ConvGeom, PackedWeights};
@@ -49,7 +49,14 @@ pub(super) fn lower(
             output: n.output,
         });
     }
-    let (value_buffer, buffer_len) = assign_buffers(&steps, &value_len, &alias_of, graph_output);
+    let (mut value_buffer, mut buffer_len) =
+        assign_buffers(&steps, &value_len, &alias_of, graph_output);
+    let segments = split_segments(
+        &steps,
+        (&value_len, &alias_of, graph_output),
+        &mut value_buffer,
+        &mut buffer_len,
+    );
     Plan {
         isa,
         steps,
@@ -58,6 +65,7 @@ pub(super) fn lower(
         value_len,
         value_buffer,
         buffer_len,
+        segments,
         input: 0,
         output: graph_output,
         folded,
@@ -364,10 +372,7 @@ fn assign_buffers(
     let n_values = value_len.len();
     let mut last_use = vec![0usize; n_values];
     for (i, s) in steps.iter().enumerate() {
-        for &v in s.inputs.iter().chain(match &s.kind {
-            StepKind::Conv(c) => c.residual.as_slice(),
-            _ => &[],
-        }) {
+        for v in reads(s) {
             last_use[alias_of[v]] = last_use[alias_of[v]].max(i);
         }
     }
@@ -410,6 +415,86 @@ fn assign_buffers(
         value_buffer[v] = value_buffer[alias_of[v]];
     }
     (value_buffer, buffer_len)
+}
+
+/// The values a step reads: its inputs and a fused residual.
+fn reads(s: &Step) -> impl Iterator<Item = ValueId> + '_ {
+    s.inputs.iter().copied().chain(match &s.kind {
+        StepKind::Conv(c) => c.residual,
+        _ => None,
+    })
+}
+
+/// Whether a step's weights outweigh one sample's input and output: such a layer gains from
+/// meeting many samples per read of its weights. Depthwise convolutions never do (a handful
+/// of weights per channel), nor do steps without weights.
+fn weights_dominate(s: &Step, value_len: &[usize]) -> bool {
+    let weights = match &s.kind {
+        StepKind::Conv(c) if !matches!(c.kind, ConvKind::Depthwise(_)) => {
+            let g = &c.geom;
+            c.out_c * (g.in_c / c.groups) * g.kh * g.kw
+        }
+        StepKind::Dense { weights, .. } => weights.m() * weights.k(),
+        _ => return false,
+    };
+    weights >= value_len[s.inputs[0]] + value_len[s.output]
+}
+
+/// Cuts the plan after its last convolution or dense layer whose weights do not outweigh one
+/// sample's activations (see [`Segments`]), and gives every value that crosses the cut a
+/// buffer of its own (a head value that shared it would overwrite the samples already kept).
+fn split_segments(
+    steps: &[Step],
+    (value_len, alias_of, graph_output): (&[usize], &[ValueId], ValueId),
+    value_buffer: &mut [usize],
+    buffer_len: &mut Vec<usize>,
+) -> Segments {
+    let light = |s: &Step| {
+        matches!(s.kind, StepKind::Conv(_) | StepKind::Dense { .. })
+            && !weights_dominate(s, value_len)
+    };
+    let cut = steps.iter().rposition(light).map_or(0, |i| i + 1);
+    let n_values = value_len.len();
+    // Roots produced in the head: the input and the outputs of steps before the cut.
+    let mut in_head = vec![false; n_values];
+    in_head[0] = true;
+    for s in &steps[..cut] {
+        in_head[s.output] = true;
+    }
+    let mut whole = vec![false; n_values];
+    for s in &steps[cut..] {
+        for v in reads(s) {
+            whole[alias_of[v]] |= in_head[alias_of[v]];
+        }
+    }
+    whole[alias_of[graph_output]] |= in_head[alias_of[graph_output]];
+    for root in (0..n_values).filter(|&v| whole[v] && alias_of[v] == v) {
+        buffer_len.push(value_len[root]);
+        let own = buffer_len.len() - 1;
+        for v in (0..n_values).filter(|&v| alias_of[v] == root) {
+            value_buffer[v] = own;
+        }
+    }
+    let mut head_len = vec![0; buffer_len.len()];
+    let mut tail_len = vec![0; buffer_len.len()];
+    for root in (0..n_values).filter(|&v| alias_of[v] == v && value_buffer[v] != usize::MAX) {
+        let lens = if in_head[root] && !whole[root] {
+            &mut head_len
+        } else {
+            &mut tail_len
+        };
+        let b = value_buffer[root];
+        lens[b] = lens[b].max(value_len[root]);
+    }
+    for v in 0..n_values {
+        whole[v] = whole[alias_of[v]];
+    }
+    Segments {
+        cut,
+        whole,
+        head_len,
+        tail_len,
+    }
 }
 
 fn pool_geom(

@@ -204,6 +204,23 @@ impl Step {
     }
 }
 
+/// A pass runs the plan in two segments. The head (steps before `cut`) goes a few samples at a
+/// time, so that its large activations stay in cache; the tail (steps from `cut`, where every
+/// layer's weights outweigh one sample's activations) takes all the pass's samples at once, so
+/// that each layer's weights are read once per pass rather than once per sample. Values that
+/// cross the cut are kept for all the pass's samples, each in a buffer of its own.
+#[derive(Clone, Debug, Default)]
+pub(crate) struct Segments {
+    /// First step of the tail (`steps.len()`: no tail).
+    pub cut: usize,
+    /// Per value: held for all the pass's samples (produced in the head, read in the tail).
+    pub whole: Vec<bool>,
+    /// Per buffer: per-sample floats of the head values it holds.
+    pub head_len: Vec<usize>,
+    /// Per buffer: per-sample floats of the tail and crossing values it holds.
+    pub tail_len: Vec<usize>,
+}
+
 /// A ready-to-run model: immutable, shared between threads.
 pub struct Plan {
     pub(crate) isa: Isa,
@@ -214,6 +231,8 @@ pub struct Plan {
     pub(crate) value_buffer: Vec<usize>,
     /// Per-sample capacity of each buffer.
     pub(crate) buffer_len: Vec<usize>,
+    /// Where a pass switches from a few samples at a time to many (see [`Segments`]).
+    pub(crate) segments: Segments,
     pub(crate) input: ValueId,
     pub(crate) output: ValueId,
     pub(crate) input_shape: Vec<usize>,
