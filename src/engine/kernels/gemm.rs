@@ -130,6 +130,11 @@ impl PackedWeights {
         self.k
     }
 
+    /// Rows per panel: a band of rows given to [`gemm_band`] starts at a multiple of this.
+    pub fn panel_rows(&self) -> usize {
+        mr_of(self.machine)
+    }
+
     /// The instruction set the weights were packed for, and that [`gemm`] will use.
     pub fn isa(&self) -> Isa {
         self.machine.isa()
@@ -332,6 +337,8 @@ fn block_cols(k: usize, nr: usize) -> usize {
 /// ([`ColumnBand::split`]) are disjoint, so different threads may fill them at once.
 pub struct ColumnBand<'a> {
     ptr: *mut f32,
+    /// Rows `first_row .. first_row + rows` of C (`ptr` is row 0).
+    first_row: usize,
     rows: usize,
     ldc: usize,
     cols: Range<usize>,
@@ -351,6 +358,7 @@ impl<'a> ColumnBand<'a> {
         Self::check(c.len(), rows, ldc, &cols);
         ColumnBand {
             ptr: c.as_mut_ptr(),
+            first_row: 0,
             rows,
             ldc,
             cols,
@@ -382,9 +390,46 @@ impl<'a> ColumnBand<'a> {
             .iter()
             .map(|r| ColumnBand {
                 ptr,
+                first_row: 0,
                 rows,
                 ldc,
                 cols: r.clone(),
+                _borrow: PhantomData,
+            })
+            .collect()
+    }
+
+    /// Columns `cols` of each row range of `parts` (ascending, non-overlapping ranges inside
+    /// `0..rows`): one band per range, for threads that share a GEMM by output rows. A range
+    /// that starts inside a panel of the weights is refused by [`gemm_band`].
+    ///
+    /// # Panics
+    /// If the ranges overlap, descend, or do not fit `c` (as [`ColumnBand::new`]).
+    pub fn split_rows(
+        c: &'a mut [f32],
+        rows: usize,
+        ldc: usize,
+        cols: Range<usize>,
+        parts: &[Range<usize>],
+    ) -> Vec<ColumnBand<'a>> {
+        Self::check(c.len(), rows, ldc, &cols);
+        let mut end = 0;
+        for r in parts {
+            assert!(
+                r.start >= end && r.start <= r.end && r.end <= rows,
+                "row ranges overlap, descend or pass {rows} rows: {parts:?}"
+            );
+            end = r.end;
+        }
+        let ptr = c.as_mut_ptr();
+        parts
+            .iter()
+            .map(|r| ColumnBand {
+                ptr,
+                first_row: r.start,
+                rows: r.len(),
+                ldc,
+                cols: cols.clone(),
                 _borrow: PhantomData,
             })
             .collect()
@@ -405,12 +450,17 @@ impl<'a> ColumnBand<'a> {
         self.cols.clone()
     }
 
-    /// The band's part of row `r`: columns `cols()` of it.
+    /// The band's part of row `r` of C: columns `cols()` of it.
     ///
     /// # Panics
     /// If `r` is not one of the band's rows.
     pub fn row(&mut self, r: usize) -> &mut [f32] {
-        assert!(r < self.rows, "row {r} of a band of {} rows", self.rows);
+        assert!(
+            (self.first_row..self.first_row + self.rows).contains(&r),
+            "row {r} of a band of rows {}..{}",
+            self.first_row,
+            self.first_row + self.rows
+        );
         // SAFETY: the band stands for `&mut` access to columns `cols` of its rows, all inside
         // the matrix (checked when it was made), and `&mut self` makes this slice the only
         // reference to them while it lives.
@@ -460,18 +510,29 @@ pub fn gemm_band(
     epi: &Epilogue<'_>,
     scratch: &mut GemmScratch,
 ) {
-    let (m, k) = (a.m, a.k);
+    let k = a.k;
     let cols = c.cols.clone();
     let ldc = c.ldc;
     assert!(
         cols.start <= cols.end && cols.end <= n_total,
         "columns {cols:?} outside 0..{n_total}"
     );
+    let (first, m) = (c.first_row, c.rows);
+    assert!(
+        first + m <= a.m,
+        "rows {first}..{} outside the weights' {}",
+        first + m,
+        a.m
+    );
     if m == 0 || cols.is_empty() {
         return;
     }
-    assert_eq!(c.rows, m, "the band's rows are not the weights' rows");
-    let c_len = (m - 1) * ldc + cols.end;
+    let mr = mr_of(a.machine);
+    assert!(
+        first % mr == 0,
+        "a band of rows starts at {first}, inside a panel of {mr} weight rows"
+    );
+    let c_len = (first + m - 1) * ldc + cols.end;
     if let Some(r) = epi.residual {
         assert!(
             r.len() >= c_len,
@@ -480,15 +541,24 @@ pub fn gemm_band(
         );
     }
     if let Some(bias) = epi.bias {
-        assert!(bias.len() >= m, "bias has {} values, needs {m}", bias.len());
+        assert!(
+            bias.len() >= first + m,
+            "bias has {} values, needs {}",
+            bias.len(),
+            first + m
+        );
     }
     check_b(b, k, n_total);
 
+    // The band's rows as a GEMM of their own: its weight panels, and C, residual and bias
+    // from its first row (all inside their arrays: checked above and when the band was made).
     let out = Out {
-        c: c.ptr,
+        c: c.ptr.wrapping_add(first * ldc),
         ldc,
-        bias: epi.bias.map_or(std::ptr::null(), <[f32]>::as_ptr),
-        residual: epi.residual.map_or(std::ptr::null(), <[f32]>::as_ptr),
+        bias: epi.bias.map_or(std::ptr::null(), |b| b[first..].as_ptr()),
+        residual: epi
+            .residual
+            .map_or(std::ptr::null(), |r| r[first * ldc..].as_ptr()),
         act: if epi.act.is_cheap() {
             epi.act
         } else {
@@ -496,7 +566,11 @@ pub fn gemm_band(
         },
     };
     let job = Job {
-        a,
+        a: PanelRows {
+            data: &a.data[first * k..],
+            m,
+            k,
+        },
         b,
         cols,
         out,
@@ -566,9 +640,18 @@ fn check_b(b: &BSource<'_>, k: usize, n_total: usize) {
     }
 }
 
+/// Consecutive weight panels of [`PackedWeights`]: rows `m` of them, from the first panel's
+/// first row, then the panels after them and the padding (the row-vectorised kernel may read
+/// past the last panel).
+struct PanelRows<'j> {
+    data: &'j [f32],
+    m: usize,
+    k: usize,
+}
+
 /// One call's operands, checked.
 struct Job<'j, 'b> {
-    a: &'j PackedWeights,
+    a: PanelRows<'j>,
     b: &'j BSource<'b>,
     cols: Range<usize>,
     out: Out,

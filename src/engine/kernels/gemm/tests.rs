@@ -789,3 +789,84 @@ fn direct_prepare_matches_the_definition() {
         }
     }
 }
+
+/// Bands of rows computed apart (as threads share a small-plane GEMM) hold the same bits as
+/// one call over every row: for matrix and convolution sources, with bias, residual and an
+/// activation applied after the tile (SiLU) or in it (ReLU), on every instruction set. A band
+/// that starts inside a weight panel is refused.
+#[test]
+fn row_bands_match_one_call_bitwise() {
+    let mut rng = Rng::new(4);
+    let g = conv_cases()[10].geom(); // 16 channels, 3x3 at 8x8
+    for isa in isas_under_test() {
+        for m in [8, 17, 40] {
+            for act in [Activation::Relu, Activation::Silu] {
+                for im2col in [false, true] {
+                    let (k, n) = if im2col {
+                        (g.in_c * 9, g.out_h * g.out_w)
+                    } else {
+                        (37, 49)
+                    };
+                    let a = rng.vec(m * k);
+                    let pw = PackedWeights::pack(isa, &a, m, k);
+                    let data = rng.vec(if im2col {
+                        g.in_c * g.in_h * g.in_w
+                    } else {
+                        k * n
+                    });
+                    let b = if im2col {
+                        BSource::Im2col {
+                            input: &data,
+                            geom: g,
+                            c0: 0,
+                        }
+                    } else {
+                        BSource::Matrix { data: &data, ld: n }
+                    };
+                    let bias = rng.vec(m);
+                    let residual = rng.vec(m * n);
+                    let epi = Epilogue {
+                        bias: Some(&bias),
+                        residual: Some(&residual),
+                        act,
+                    };
+                    let mut whole = vec![0.0; m * n];
+                    let mut scratch = GemmScratch::new();
+                    gemm(&pw, &b, n, 0..n, &mut whole, n, &epi, &mut scratch);
+                    let step = pw.panel_rows();
+                    let mut banded = vec![f32::NAN; m * n];
+                    let cut = (m / 2).next_multiple_of(step).min(m);
+                    for band in ColumnBand::split_rows(&mut banded, m, n, 0..n, &[0..cut, cut..m]) {
+                        gemm_band(&pw, &b, n, band, &epi, &mut scratch);
+                    }
+                    let bits = |v: &[f32]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
+                    assert_eq!(
+                        bits(&banded),
+                        bits(&whole),
+                        "{isa:?} m={m} {act:?} im2col={im2col} cut at {cut}"
+                    );
+                }
+            }
+        }
+        {
+            let pw = PackedWeights::pack(isa, &[0.0; 16 * 4], 16, 4);
+            let b = [0.0; 4 * 3];
+            let mut c = [0.0; 16 * 3];
+            let bands = ColumnBand::split_rows(&mut c, 16, 3, 0..3, &[0..1, 1..16]);
+            let inside = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
+                for band in bands {
+                    let src = BSource::Matrix { data: &b, ld: 3 };
+                    gemm_band(
+                        &pw,
+                        &src,
+                        3,
+                        band,
+                        &Epilogue::default(),
+                        &mut GemmScratch::new(),
+                    );
+                }
+            }));
+            assert!(inside.is_err(), "{isa:?}: a band starting at row 1 runs");
+        }
+    }
+}
