@@ -23,12 +23,14 @@ use std::time::{Duration, Instant};
 
 use rayon_core::ThreadPool;
 
+use super::kernels::elementwise::Broadcast;
 use super::kernels::gemm::{
     BSource, ColumnBand, Epilogue, GemmScratch, PackedWeights, gemm, gemm_band,
 };
 use super::kernels::simd::Machine;
 use super::kernels::{depthwise, elementwise, layout, norm, pool, vmath, winograd};
 use super::plan::{ConvKind, ConvStep, Plan, StepKind};
+use crate::graph::BinaryKind;
 
 /// Buffers for one slice of a batch at a time (see [`Plan::slice_samples`]); grow-only, so a
 /// steady load allocates no activations. Each convolution still allocates the short lists
@@ -353,13 +355,22 @@ impl Plan {
                 let b_used = if constant.is_some() { b.len() } else { b_len };
                 for s in 0..batch {
                     // A constant is shared by all samples; a value operand has one per sample.
-                    elementwise::binary(
-                        how,
-                        *kind,
-                        *swapped,
+                    binary_spread(
+                        (how, *kind, *swapped),
                         &input[s * in_len..][..in_len],
                         &b[s * b_len..][..b_used],
                         &mut out[s * out_len..][..out_len],
+                        (scratches, team),
+                    );
+                }
+            }
+            StepKind::GlobalAvgPool { c, plane } => {
+                for s in 0..batch {
+                    global_pool_spread(
+                        (*c, *plane),
+                        &input[s * in_len..][..in_len],
+                        &mut out[s * out_len..][..out_len],
+                        (scratches, team),
                     );
                 }
             }
@@ -458,7 +469,6 @@ fn per_sample(kind: &StepKind, input: &[f32], out: &mut [f32], sums: &mut Vec<f6
             geom,
             count_include_pad,
         } => pool::avg_pool(geom, *count_include_pad, input, out),
-        StepKind::GlobalAvgPool { c, plane } => pool::global_avg_pool(*c, *plane, input, out),
         StepKind::Softmax { c, inner } => pool::softmax(*c, *inner, input, out),
         StepKind::Pad {
             c,
@@ -485,6 +495,7 @@ fn per_sample(kind: &StepKind, input: &[f32], out: &mut [f32], sums: &mut Vec<f6
         StepKind::Conv(_)
         | StepKind::Dense { .. }
         | StepKind::Binary { .. }
+        | StepKind::GlobalAvgPool { .. }
         | StepKind::Concat { .. }
         | StepKind::Act(_) => unreachable!("run by Plan::run_step"),
     }
@@ -598,6 +609,62 @@ const COLUMN_STEP: usize = 8;
 /// thread would run. Measured (2026-12-05, 2-core AVX-512 server, batch 1 on two threads):
 /// EfficientNet-B0's 1×1 layers at 7×7 took 1.3–1.9 ms instead of 2.5.
 const ROWS_BELOW_COLUMNS: usize = 64;
+
+/// Elementwise steps of fewer output floats per sample run on one thread (a squeeze-and-
+/// excitation scale at 7×7 with 1,152 channels has 56 K; at 112×112 with 32, 401 K): below
+/// this, a few microseconds of work against the team's wake-up and join.
+const SPREAD_MIN_ELEMENTS: usize = 1 << 16;
+
+/// A binary op on one sample, its output shared out over the team by whole channels
+/// (per-channel operand) or runs of elements (same-shape or scalar operand) where it is large
+/// enough; other broadcasts run here. Every element is the same operation whichever part
+/// computes it.
+fn binary_spread(
+    (how, kind, swapped): (&Broadcast, BinaryKind, bool),
+    a: &[f32],
+    b: &[f32],
+    out: &mut [f32],
+    (scratches, team): (&mut [PartScratch], Team<'_>),
+) {
+    let unit = match how {
+        Broadcast::PerChannel { inner } => *inner,
+        Broadcast::Full | Broadcast::Scalar => 1,
+        Broadcast::General { .. } => 0,
+    };
+    if team.is_none() || scratches.len() < 2 || unit == 0 || out.len() < SPREAD_MIN_ELEMENTS {
+        return elementwise::binary(how, kind, swapped, a, b, out);
+    }
+    let units = out.len() / unit;
+    let ranges = share(units, scratches.len(), COLUMN_STEP);
+    let chunks = planes(out, Some(a), unit, &ranges);
+    spread(team, chunks, scratches, |(r, o, a_part), _| {
+        let b_part = match how {
+            Broadcast::Scalar => b,
+            _ => &b[r],
+        };
+        let a_part = a_part.expect("planes was given the operand");
+        elementwise::binary(how, kind, swapped, a_part, b_part, o);
+    });
+}
+
+/// Global average pooling of one sample, its channels shared out over the team where the
+/// input is large enough.
+fn global_pool_spread(
+    (c, plane): (usize, usize),
+    input: &[f32],
+    out: &mut [f32],
+    (scratches, team): (&mut [PartScratch], Team<'_>),
+) {
+    if team.is_none() || scratches.len() < 2 || c * plane < SPREAD_MIN_ELEMENTS {
+        return pool::global_avg_pool(c, plane, input, out);
+    }
+    let ranges = share(c, scratches.len(), 1);
+    let chunks = planes(&mut out[..c], None, 1, &ranges);
+    spread(team, chunks, scratches, |(r, o, _), _| {
+        let x = &input[r.start * plane..r.end * plane];
+        pool::global_avg_pool(r.len(), plane, x, o);
+    });
+}
 
 /// One group of a convolution run as a GEMM.
 struct GroupGemm<'a> {
@@ -895,6 +962,63 @@ mod tests {
                 (f64::from(got) - w).abs() <= 1e-4 * scale,
                 "output {k}: {got} vs {w}"
             );
+        }
+        let bits = |v: &[f32]| v.iter().map(|f| f.to_bits()).collect::<Vec<_>>();
+        for threads in [2, 3] {
+            let pool = rayon_core::ThreadPoolBuilder::new()
+                .num_threads(threads)
+                .build()
+                .unwrap();
+            let spread = pool.install(|| run(Some(&pool)));
+            assert_eq!(bits(&spread), bits(&alone), "{threads} threads");
+        }
+    }
+
+    /// A squeeze-and-excitation-like tail large enough to be shared out over threads: the
+    /// input scaled by its own channel means (per-channel operand), then added to itself
+    /// (same-shape operand). Against the definition in f64 (common practice: the mean of a
+    /// plane, then an elementwise product and sum), and bit for bit on 1, 2 and 3 threads.
+    #[test]
+    fn scale_by_channel_means_on_any_thread_count() {
+        let (c, h, w) = (20, 60, 60); // 72,000 floats: over SPREAD_MIN_ELEMENTS
+        let mut b = GraphBuilder::new("x", &[c, h, w]);
+        let x = b.input();
+        let mean = b.node("gap", Op::GlobalAvgPool, &[&x]);
+        let scaled = b.node("scale", Op::Mul { constant: None }, &[&x, &mean]);
+        let sum = b.node("sum", Op::Add { constant: None }, &[&scaled, &x]);
+        let bundle = bundle_of("scale", b, &sum, &[c, h, w]);
+        let plan = Plan::new(&bundle, Isa::detect().unwrap());
+        let lined_up: Vec<bool> = plan
+            .steps
+            .iter()
+            .filter_map(|s| match &s.kind {
+                StepKind::Binary { how, .. } => Some(matches!(
+                    how,
+                    Broadcast::PerChannel { .. } | Broadcast::Full
+                )),
+                _ => None,
+            })
+            .collect();
+        assert_eq!(lined_up, [true, true], "both ops are shared out");
+        let input = SplitMix64::new(12).vec(c * h * w, -1.0, 1.0);
+        let run = |team: Team<'_>| {
+            let mut out = vec![0.0; plan.output_len()];
+            plan.run_in_slices(&input, 1, &mut Workspace::new(), &mut out, (1, 1), team);
+            out
+        };
+        let alone = run(None);
+        let plane = h * w;
+        for ch in 0..c {
+            let xs = &input[ch * plane..][..plane];
+            let m = xs.iter().map(|&v| f64::from(v)).sum::<f64>() / plane as f64;
+            for (k, &v) in xs.iter().enumerate() {
+                let want = f64::from(v) * m + f64::from(v);
+                let got = f64::from(alone[ch * plane + k]);
+                assert!(
+                    (got - want).abs() <= 1e-5,
+                    "channel {ch}, {k}: {got} vs {want}"
+                );
+            }
         }
         let bits = |v: &[f32]| v.iter().map(|f| f.to_bits()).collect::<Vec<_>>();
         for threads in [2, 3] {
