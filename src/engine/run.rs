@@ -23,6 +23,7 @@ use std::time::{Duration, Instant};
 
 use rayon_core::ThreadPool;
 
+use super::kernels::activation::Activation;
 use super::kernels::elementwise::Broadcast;
 use super::kernels::gemm::{
     BSource, ColumnBand, Epilogue, GemmScratch, PackedWeights, gemm, gemm_band,
@@ -324,20 +325,8 @@ impl Plan {
                 act,
                 features,
             } => {
-                let epi = Epilogue {
-                    bias: bias.as_deref(),
-                    residual: None,
-                    act: *act,
-                };
-                dense(
-                    weights,
-                    &epi,
-                    *features,
-                    input,
-                    out,
-                    tmp,
-                    &mut scratches[0].gemm,
-                );
+                let layer = (weights, bias.as_deref(), *act, *features);
+                dense(layer, input, out, tmp, &mut scratches[0].gemm);
             }
             StepKind::Binary {
                 kind,
@@ -365,14 +354,7 @@ impl Plan {
                 }
             }
             StepKind::GlobalAvgPool { c, plane } => {
-                for s in 0..batch {
-                    global_pool_spread(
-                        (*c, *plane),
-                        &input[s * in_len..][..in_len],
-                        &mut out[s * out_len..][..out_len],
-                        (scratches, team),
-                    );
-                }
+                global_pool_spread((*c, *plane), input, out, (scratches, team));
             }
             StepKind::Concat { outer, blocks } => {
                 self.concat(&step.inputs, (*outer, blocks), buffers, samples, out);
@@ -422,14 +404,17 @@ impl Plan {
 /// A dense layer over the last axis of `input` (every sample's positions back to back):
 /// one GEMM whose columns are all positions of the slice.
 fn dense(
-    weights: &PackedWeights,
-    epi: &Epilogue<'_>,
-    features: usize,
+    (weights, bias, act, features): (&PackedWeights, Option<&[f32]>, Activation, usize),
     input: &[f32],
     out: &mut [f32],
     tmp: &mut Vec<f32>,
     scratch: &mut GemmScratch,
 ) {
+    let epi = Epilogue {
+        bias,
+        residual: None,
+        act,
+    };
     let columns = input.len() / features;
     let outputs = out.len() / columns;
     // C is [outputs, columns]; the value layout is [columns, outputs], so transpose after.
@@ -446,7 +431,7 @@ fn dense(
         0..columns,
         &mut tmp[..out.len()],
         columns,
-        epi,
+        &epi,
         scratch,
     );
     for c in 0..columns {
@@ -647,23 +632,25 @@ fn binary_spread(
     });
 }
 
-/// Global average pooling of one sample, its channels shared out over the team where the
-/// input is large enough.
+/// Global average pooling of the samples of `input` (`[c, plane]` each) into `out` (`c`
+/// each), each sample's channels shared out over the team where its input is large enough.
 fn global_pool_spread(
     (c, plane): (usize, usize),
     input: &[f32],
     out: &mut [f32],
     (scratches, team): (&mut [PartScratch], Team<'_>),
 ) {
-    if team.is_none() || scratches.len() < 2 || c * plane < SPREAD_MIN_ELEMENTS {
-        return pool::global_avg_pool(c, plane, input, out);
+    for (x, o) in input.chunks_exact(c * plane).zip(out.chunks_exact_mut(c)) {
+        if team.is_none() || scratches.len() < 2 || c * plane < SPREAD_MIN_ELEMENTS {
+            pool::global_avg_pool(c, plane, x, o);
+            continue;
+        }
+        let ranges = share(c, scratches.len(), 1);
+        let chunks = planes(o, None, 1, &ranges);
+        spread(team, chunks, &mut *scratches, |(r, o, _), _| {
+            pool::global_avg_pool(r.len(), plane, &x[r.start * plane..r.end * plane], o);
+        });
     }
-    let ranges = share(c, scratches.len(), 1);
-    let chunks = planes(&mut out[..c], None, 1, &ranges);
-    spread(team, chunks, scratches, |(r, o, _), _| {
-        let x = &input[r.start * plane..r.end * plane];
-        pool::global_avg_pool(r.len(), plane, x, o);
-    });
 }
 
 /// One group of a convolution run as a GEMM.
@@ -823,15 +810,7 @@ mod tests {
         let f = b.node("flatten", Op::Flatten, &[&p]);
         let dw = b.tensor("fc.w", &[5, 36], rng.vec(180, -0.5, 0.5));
         let db = b.tensor("fc.b", &[5], rng.vec(5, -0.1, 0.1));
-        let d = b.node(
-            "fc",
-            Op::Dense {
-                weight: dw,
-                bias: Some(db),
-                weight_layout: Default::default(),
-            },
-            &[&f],
-        );
+        let d = b.dense("fc", dw, Some(db), &f);
         bundle_of("slices", b, &d, &[2, 6, 6])
     }
 
@@ -855,6 +834,19 @@ mod tests {
             w.add_tensor(name, &shape, data).unwrap();
         }
         Bundle::from_bytes(w.to_bytes().unwrap()).unwrap()
+    }
+
+    /// `run` gives `alone`'s bits (its result without a team) on teams of 2 and 3 threads.
+    fn same_bits_on_teams(alone: &[f32], run: impl Fn(Team<'_>) -> Vec<f32> + Sync) {
+        let bits = |v: &[f32]| v.iter().map(|f| f.to_bits()).collect::<Vec<_>>();
+        for threads in [2, 3] {
+            let pool = rayon_core::ThreadPoolBuilder::new()
+                .num_threads(threads)
+                .build()
+                .unwrap();
+            let spread = pool.install(|| run(Some(&pool)));
+            assert_eq!(bits(&spread), bits(alone), "{threads} threads");
+        }
     }
 
     /// Two 3×3 convolutions, 32 → 32 channels at 24×24 (36 tiles: the Winograd route), the
@@ -963,15 +955,7 @@ mod tests {
                 "output {k}: {got} vs {w}"
             );
         }
-        let bits = |v: &[f32]| v.iter().map(|f| f.to_bits()).collect::<Vec<_>>();
-        for threads in [2, 3] {
-            let pool = rayon_core::ThreadPoolBuilder::new()
-                .num_threads(threads)
-                .build()
-                .unwrap();
-            let spread = pool.install(|| run(Some(&pool)));
-            assert_eq!(bits(&spread), bits(&alone), "{threads} threads");
-        }
+        same_bits_on_teams(&alone, run);
     }
 
     /// A squeeze-and-excitation-like tail large enough to be shared out over threads: the
@@ -1020,15 +1004,7 @@ mod tests {
                 );
             }
         }
-        let bits = |v: &[f32]| v.iter().map(|f| f.to_bits()).collect::<Vec<_>>();
-        for threads in [2, 3] {
-            let pool = rayon_core::ThreadPoolBuilder::new()
-                .num_threads(threads)
-                .build()
-                .unwrap();
-            let spread = pool.install(|| run(Some(&pool)));
-            assert_eq!(bits(&spread), bits(&alone), "{threads} threads");
-        }
+        same_bits_on_teams(&alone, run);
     }
 
     /// Slicing a batch, and chunking the head of a pass, must not change a single bit of any
@@ -1095,15 +1071,7 @@ mod tests {
         let sum = b.node("add", Op::Add { constant: None }, &[&c2, &c1]);
         let f = b.node("flatten", Op::Flatten, &[&sum]);
         let dw = b.tensor("fc.w", &[5, 256], rng.vec(1280, -0.1, 0.1));
-        let d = b.node(
-            "fc",
-            Op::Dense {
-                weight: dw,
-                bias: None,
-                weight_layout: Default::default(),
-            },
-            &[&f],
-        );
+        let d = b.dense("fc", dw, None, &f);
         bundle_of("cut", b, &d, &[2, 8, 8])
     }
 

@@ -48,6 +48,23 @@ impl GraphBuilder {
         name.to_string()
     }
 
+    /// Adds dense layer `name` (weight tensor `[out, in]`, as PyTorch's `Linear` stores it)
+    /// reading `input`; returns its output value.
+    pub fn dense(
+        &mut self,
+        name: &str,
+        weight: String,
+        bias: Option<String>,
+        input: &str,
+    ) -> String {
+        let op = Op::Dense {
+            weight,
+            bias,
+            weight_layout: Default::default(),
+        };
+        self.node(name, op, &[input])
+    }
+
     /// Finishes with `output` as the graph's answer.
     pub fn finish(self, output: &str) -> (Graph, Vec<NamedTensor>) {
         (

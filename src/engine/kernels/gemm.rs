@@ -356,10 +356,15 @@ impl<'a> ColumnBand<'a> {
     /// If `c` is too short for them or `cols` does not fit in `ldc`.
     pub fn new(c: &'a mut [f32], rows: usize, ldc: usize, cols: Range<usize>) -> ColumnBand<'a> {
         Self::check(c.len(), rows, ldc, &cols);
+        Self::at(c.as_mut_ptr(), 0..rows, ldc, cols)
+    }
+
+    /// The band of rows `rows` and columns `cols` of the C at `ptr` (checked by the caller).
+    fn at(ptr: *mut f32, rows: Range<usize>, ldc: usize, cols: Range<usize>) -> ColumnBand<'a> {
         ColumnBand {
-            ptr: c.as_mut_ptr(),
-            first_row: 0,
-            rows,
+            ptr,
+            first_row: rows.start,
+            rows: rows.len(),
             ldc,
             cols,
             _borrow: PhantomData,
@@ -388,14 +393,7 @@ impl<'a> ColumnBand<'a> {
         let ptr = c.as_mut_ptr();
         parts
             .iter()
-            .map(|r| ColumnBand {
-                ptr,
-                first_row: 0,
-                rows,
-                ldc,
-                cols: r.clone(),
-                _borrow: PhantomData,
-            })
+            .map(|r| Self::at(ptr, 0..rows, ldc, r.clone()))
             .collect()
     }
 
@@ -424,14 +422,7 @@ impl<'a> ColumnBand<'a> {
         let ptr = c.as_mut_ptr();
         parts
             .iter()
-            .map(|r| ColumnBand {
-                ptr,
-                first_row: r.start,
-                rows: r.len(),
-                ldc,
-                cols: cols.clone(),
-                _borrow: PhantomData,
-            })
+            .map(|r| Self::at(ptr, r.clone(), ldc, cols.clone()))
             .collect()
     }
 
