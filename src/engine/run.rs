@@ -25,9 +25,7 @@ use rayon_core::ThreadPool;
 
 use super::kernels::activation::Activation;
 use super::kernels::elementwise::Broadcast;
-use super::kernels::gemm::{
-    BSource, ColumnBand, Epilogue, GemmScratch, PackedWeights, gemm, gemm_band,
-};
+use super::kernels::gemm::{BSource, Band, Epilogue, GemmScratch, PackedWeights, gemm, gemm_band};
 use super::kernels::simd::Machine;
 use super::kernels::{depthwise, elementwise, layout, norm, pool, vmath, winograd};
 use super::plan::{ConvKind, ConvStep, Plan, StepKind};
@@ -35,7 +33,7 @@ use crate::graph::BinaryKind;
 
 /// Buffers for one slice of a batch at a time (see [`Plan::slice_samples`]); grow-only, so a
 /// steady load allocates no activations. Each convolution still allocates the short lists
-/// that describe its parts (`share`, `planes`, `ColumnBand::split`), one part on one thread.
+/// that describe its parts (`share`, `planes`, `Band::split`), one part on one thread.
 #[derive(Default)]
 pub struct Workspace {
     buffers: Vec<Vec<f32>>,
@@ -497,12 +495,11 @@ fn run_conv(
 ) {
     let g = &conv.geom;
     let n = g.out_h * g.out_w;
-    // A small convolution is over before the other threads would have woken up.
-    let (scratches, team) = if conv.multiply_adds() < SPREAD_MIN_MULTIPLY_ADDS {
-        (&mut scratches[..1], None)
-    } else {
-        (scratches, team)
-    };
+    let (scratches, team) = team_for(
+        conv.multiply_adds(),
+        SPREAD_MIN_MULTIPLY_ADDS,
+        (scratches, team),
+    );
     let parts = scratches.len();
     match &conv.kind {
         ConvKind::Depthwise(w) => {
@@ -527,7 +524,7 @@ fn run_conv(
                         ..(r.end * winograd::TILE).min(g.out_h) * g.out_w
                 })
                 .collect();
-            let bands = ColumnBand::split(out, conv.out_c, n, &cols);
+            let bands = Band::split(out, conv.out_c, n, &cols);
             let epi = Epilogue {
                 bias: conv.bias.as_deref(),
                 residual,
@@ -553,7 +550,7 @@ fn run_conv(
                 let chunks = planes(out, None, ocg * n, &share(groups.len(), parts, 1));
                 spread(team, chunks, scratches, |(range, o, _), part| {
                     for (i, gi) in range.clone().enumerate() {
-                        let c = ColumnBand::new(&mut o[i * ocg * n..][..ocg * n], ocg, n, 0..n);
+                        let c = Band::new(&mut o[i * ocg * n..][..ocg * n], ocg, n, 0..n);
                         group.run(&groups[gi], gi, c, &mut part.gemm);
                     }
                 });
@@ -566,9 +563,9 @@ fn run_conv(
                     let o = &mut out[gi * ocg * n..(gi + 1) * ocg * n];
                     let bands = if by_rows {
                         let rows = share(ocg, parts, weights.panel_rows());
-                        ColumnBand::split_rows(o, ocg, n, 0..n, &rows)
+                        Band::split_rows(o, ocg, n, 0..n, &rows)
                     } else {
-                        ColumnBand::split(o, ocg, n, &cols)
+                        Band::split(o, ocg, n, &cols)
                     };
                     spread(team, bands, scratches, |c, part| {
                         group.run(weights, gi, c, &mut part.gemm);
@@ -616,7 +613,9 @@ fn binary_spread(
         Broadcast::Full | Broadcast::Scalar => 1,
         Broadcast::General { .. } => 0,
     };
-    if team.is_none() || scratches.len() < 2 || unit == 0 || out.len() < SPREAD_MIN_ELEMENTS {
+    let size = if unit == 0 { 0 } else { out.len() };
+    let (scratches, team) = team_for(size, SPREAD_MIN_ELEMENTS, (scratches, team));
+    if team.is_none() {
         return elementwise::binary(how, kind, swapped, a, b, out);
     }
     let units = out.len() / unit;
@@ -640,8 +639,9 @@ fn global_pool_spread(
     out: &mut [f32],
     (scratches, team): (&mut [PartScratch], Team<'_>),
 ) {
+    let (scratches, team) = team_for(c * plane, SPREAD_MIN_ELEMENTS, (scratches, team));
     for (x, o) in input.chunks_exact(c * plane).zip(out.chunks_exact_mut(c)) {
-        if team.is_none() || scratches.len() < 2 || c * plane < SPREAD_MIN_ELEMENTS {
+        if team.is_none() {
             pool::global_avg_pool(c, plane, x, o);
             continue;
         }
@@ -650,6 +650,21 @@ fn global_pool_spread(
         spread(team, chunks, &mut *scratches, |(r, o, _), _| {
             pool::global_avg_pool(r.len(), plane, &x[r.start * plane..r.end * plane], o);
         });
+    }
+}
+
+/// The team one step of `size` units of work shares: none, and one scratch, below `min`
+/// (the work is over before the other threads would have woken up) or when the team has a
+/// single thread.
+fn team_for<'s, 'p>(
+    size: usize,
+    min: usize,
+    (scratches, team): (&'s mut [PartScratch], Team<'p>),
+) -> (&'s mut [PartScratch], Team<'p>) {
+    if size < min || scratches.len() < 2 {
+        (&mut scratches[..1], None)
+    } else {
+        (scratches, team)
     }
 }
 
@@ -665,13 +680,7 @@ struct GroupGemm<'a> {
 
 impl GroupGemm<'_> {
     /// Group `gi` with `weights` into `c`, which covers the group's rows.
-    fn run(
-        &self,
-        weights: &PackedWeights,
-        gi: usize,
-        c: ColumnBand<'_>,
-        scratch: &mut GemmScratch,
-    ) {
+    fn run(&self, weights: &PackedWeights, gi: usize, c: Band<'_>, scratch: &mut GemmScratch) {
         let conv = self.conv;
         let g = &conv.geom;
         let (n, ocg) = (self.n, self.ocg);

@@ -332,10 +332,11 @@ fn block_cols(k: usize, nr: usize) -> usize {
     (shape::B_BLOCK_FLOATS / k.max(1) / nr).max(1) * nr
 }
 
-/// Columns `cols` of every row of a row-major matrix with row stride `ldc`, borrowed
-/// mutably: what one [`gemm_band`] call writes. Bands split from one matrix
-/// ([`ColumnBand::split`]) are disjoint, so different threads may fill them at once.
-pub struct ColumnBand<'a> {
+/// A block of a row-major matrix with row stride `ldc`, borrowed mutably: columns `cols` of
+/// a range of rows (all rows for [`Band::new`] and [`Band::split`]); what one [`gemm_band`]
+/// call writes. Bands split from one matrix ([`Band::split`], [`Band::split_rows`]) are
+/// disjoint, so different threads may fill them at once.
+pub struct Band<'a> {
     ptr: *mut f32,
     /// Rows `first_row .. first_row + rows` of C (`ptr` is row 0).
     first_row: usize,
@@ -347,21 +348,21 @@ pub struct ColumnBand<'a> {
 
 // SAFETY: a band stands for `&mut` access to its own elements only (disjoint from every other
 // band of the matrix), and `&mut [f32]` is `Send`.
-unsafe impl Send for ColumnBand<'_> {}
+unsafe impl Send for Band<'_> {}
 
-impl<'a> ColumnBand<'a> {
+impl<'a> Band<'a> {
     /// Columns `cols` of all `rows` rows of `c`.
     ///
     /// # Panics
     /// If `c` is too short for them or `cols` does not fit in `ldc`.
-    pub fn new(c: &'a mut [f32], rows: usize, ldc: usize, cols: Range<usize>) -> ColumnBand<'a> {
+    pub fn new(c: &'a mut [f32], rows: usize, ldc: usize, cols: Range<usize>) -> Band<'a> {
         Self::check(c.len(), rows, ldc, &cols);
         Self::at(c.as_mut_ptr(), 0..rows, ldc, cols)
     }
 
     /// The band of rows `rows` and columns `cols` of the C at `ptr` (checked by the caller).
-    fn at(ptr: *mut f32, rows: Range<usize>, ldc: usize, cols: Range<usize>) -> ColumnBand<'a> {
-        ColumnBand {
+    fn at(ptr: *mut f32, rows: Range<usize>, ldc: usize, cols: Range<usize>) -> Band<'a> {
+        Band {
             ptr,
             first_row: rows.start,
             rows: rows.len(),
@@ -374,13 +375,13 @@ impl<'a> ColumnBand<'a> {
     /// One band per range of `parts` (ascending, non-overlapping column ranges).
     ///
     /// # Panics
-    /// If the ranges overlap, descend, or do not fit `c` (as [`ColumnBand::new`]).
+    /// If the ranges overlap, descend, or do not fit `c` (as [`Band::new`]).
     pub fn split(
         c: &'a mut [f32],
         rows: usize,
         ldc: usize,
         parts: &[Range<usize>],
-    ) -> Vec<ColumnBand<'a>> {
+    ) -> Vec<Band<'a>> {
         let mut end = 0;
         for r in parts {
             assert!(
@@ -402,14 +403,14 @@ impl<'a> ColumnBand<'a> {
     /// that starts inside a panel of the weights is refused by [`gemm_band`].
     ///
     /// # Panics
-    /// If the ranges overlap, descend, or do not fit `c` (as [`ColumnBand::new`]).
+    /// If the ranges overlap, descend, or do not fit `c` (as [`Band::new`]).
     pub fn split_rows(
         c: &'a mut [f32],
         rows: usize,
         ldc: usize,
         cols: Range<usize>,
         parts: &[Range<usize>],
-    ) -> Vec<ColumnBand<'a>> {
+    ) -> Vec<Band<'a>> {
         Self::check(c.len(), rows, ldc, &cols);
         let mut end = 0;
         for r in parts {
@@ -483,21 +484,22 @@ pub fn gemm(
     epi: &Epilogue<'_>,
     scratch: &mut GemmScratch,
 ) {
-    let band = ColumnBand::new(c, a.m, ldc, cols);
+    let band = Band::new(c, a.m, ldc, cols);
     gemm_band(a, b, n_total, band, epi, scratch);
 }
 
-/// [`gemm`] into one band of C: the columns `c.cols()` (a sub-range of `0..n_total`) of every
-/// row. Bands of one C computed apart hold the same bits as one call over all columns.
+/// [`gemm`] into one band of C: its rows (weight rows, the band starting at a whole panel of
+/// them) and its columns `c.cols()` (a sub-range of `0..n_total`). Bands of one C computed
+/// apart hold the same bits as one call over all of it.
 ///
 /// # Panics
-/// If the band's rows are not the weights' rows, or the operands are too short for the
-/// shapes (the caller validates shapes first).
+/// If the band's rows pass the weights' rows or start inside a panel, or the operands are too
+/// short for the shapes (the caller validates shapes first).
 pub fn gemm_band(
     a: &PackedWeights,
     b: &BSource<'_>,
     n_total: usize,
-    c: ColumnBand<'_>,
+    c: Band<'_>,
     epi: &Epilogue<'_>,
     scratch: &mut GemmScratch,
 ) {

@@ -28,7 +28,7 @@
 
 use std::fmt;
 
-use super::gemm::{BSource, ColumnBand, ConvGeom, Epilogue, GemmScratch, PackedWeights, gemm};
+use super::gemm::{BSource, Band, ConvGeom, Epilogue, GemmScratch, PackedWeights, gemm};
 use super::isa::Isa;
 use super::simd::Machine;
 use super::vmath;
@@ -136,7 +136,7 @@ pub fn conv_band(
     w: &WinogradWeights,
     geom: &ConvGeom,
     input: &[f32],
-    mut c: ColumnBand<'_>,
+    mut c: Band<'_>,
     epi: &Epilogue<'_>,
     (buf, scratch): (&mut Vec<f32>, &mut GemmScratch),
 ) {
@@ -235,10 +235,10 @@ fn transform_outputs(
     m: &[f32],
     out_c: usize,
     epi: &Epilogue<'_>,
-    c: &mut ColumnBand<'_>,
+    c: &mut Band<'_>,
 ) {
     #[inline(always)]
-    fn all(at: &Tiles<'_>, m: &[f32], out_c: usize, epi: &Epilogue<'_>, c: &mut ColumnBand<'_>) {
+    fn all(at: &Tiles<'_>, m: &[f32], out_c: usize, epi: &Epilogue<'_>, c: &mut Band<'_>) {
         let col0 = c.cols().start;
         for row in 0..out_c {
             let out = c.row(row);
@@ -249,13 +249,7 @@ fn transform_outputs(
     }
     #[cfg(target_arch = "x86_64")]
     #[target_feature(enable = "avx2")]
-    fn all_avx2(
-        at: &Tiles<'_>,
-        m: &[f32],
-        out_c: usize,
-        epi: &Epilogue<'_>,
-        c: &mut ColumnBand<'_>,
-    ) {
+    fn all_avx2(at: &Tiles<'_>, m: &[f32], out_c: usize, epi: &Epilogue<'_>, c: &mut Band<'_>) {
         all(at, m, out_c, epi, c);
     }
     match machine {

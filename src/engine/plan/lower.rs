@@ -49,13 +49,12 @@ pub(super) fn lower(
             output: n.output,
         });
     }
-    let (mut value_buffer, mut buffer_len) =
-        assign_buffers(&steps, &value_len, &alias_of, graph_output);
+    let (mut value_buffer, buffers) = assign_buffers(&steps, &value_len, &alias_of, graph_output);
     let segments = split_segments(
         &steps,
         (&value_len, &alias_of, graph_output),
         &mut value_buffer,
-        &mut buffer_len,
+        buffers,
     );
     Plan {
         isa,
@@ -64,7 +63,6 @@ pub(super) fn lower(
         output_shape: value_shape[graph_output].clone(),
         value_len,
         value_buffer,
-        buffer_len,
         segments,
         input: 0,
         output: graph_output,
@@ -362,13 +360,14 @@ fn per_channel(b: &[usize], out: &[usize]) -> bool {
 
 /// Each step's output gets a free buffer; a buffer is freed after the last step that reads
 /// any value stored in it. A step's output never shares a buffer with its inputs. Returns
-/// each value's buffer and each buffer's per-sample length.
+/// each value's buffer and the number of buffers (their sizes follow from the values they
+/// hold: [`Segments`]).
 fn assign_buffers(
     steps: &[Step],
     value_len: &[usize],
     alias_of: &[ValueId],
     graph_output: ValueId,
-) -> (Vec<usize>, Vec<usize>) {
+) -> (Vec<usize>, usize) {
     let n_values = value_len.len();
     let mut last_use = vec![0usize; n_values];
     for (i, s) in steps.iter().enumerate() {
@@ -414,7 +413,7 @@ fn assign_buffers(
     for v in 0..n_values {
         value_buffer[v] = value_buffer[alias_of[v]];
     }
-    (value_buffer, buffer_len)
+    (value_buffer, buffer_len.len())
 }
 
 /// The values a step reads: its inputs and a fused residual.
@@ -443,11 +442,12 @@ fn weights_dominate(s: &Step, value_len: &[usize]) -> bool {
 /// Cuts the plan after its last convolution or dense layer whose weights do not outweigh one
 /// sample's activations (see [`Segments`]), and gives every value that crosses the cut a
 /// buffer of its own (a head value that shared it would overwrite the samples already kept).
+/// `buffers`: how many [`assign_buffers`] made.
 fn split_segments(
     steps: &[Step],
     (value_len, alias_of, graph_output): (&[usize], &[ValueId], ValueId),
     value_buffer: &mut [usize],
-    buffer_len: &mut Vec<usize>,
+    mut buffers: usize,
 ) -> Segments {
     let light = |s: &Step| {
         matches!(s.kind, StepKind::Conv(_) | StepKind::Dense { .. })
@@ -469,14 +469,13 @@ fn split_segments(
     }
     whole[alias_of[graph_output]] |= in_head[alias_of[graph_output]];
     for root in (0..n_values).filter(|&v| whole[v] && alias_of[v] == v) {
-        buffer_len.push(value_len[root]);
-        let own = buffer_len.len() - 1;
         for v in (0..n_values).filter(|&v| alias_of[v] == root) {
-            value_buffer[v] = own;
+            value_buffer[v] = buffers;
         }
+        buffers += 1;
     }
-    let mut head_len = vec![0; buffer_len.len()];
-    let mut tail_len = vec![0; buffer_len.len()];
+    let mut head_len = vec![0; buffers];
+    let mut tail_len = vec![0; buffers];
     for root in (0..n_values).filter(|&v| alias_of[v] == v && value_buffer[v] != usize::MAX) {
         let lens = if in_head[root] && !whole[root] {
             &mut head_len

@@ -215,7 +215,8 @@ pub(crate) struct Segments {
     pub cut: usize,
     /// Per value: held for all the pass's samples (produced in the head, read in the tail).
     pub whole: Vec<bool>,
-    /// Per buffer: per-sample floats of the head values it holds.
+    /// Per buffer (their number is the length of both lists): per-sample floats of the head
+    /// values it holds.
     pub head_len: Vec<usize>,
     /// Per buffer: per-sample floats of the tail and crossing values it holds.
     pub tail_len: Vec<usize>,
@@ -229,8 +230,6 @@ pub struct Plan {
     pub(crate) value_len: Vec<usize>,
     /// Buffer holding each value (aliases share one).
     pub(crate) value_buffer: Vec<usize>,
-    /// Per-sample capacity of each buffer.
-    pub(crate) buffer_len: Vec<usize>,
     /// Where a pass switches from a few samples at a time to many (see [`Segments`]).
     pub(crate) segments: Segments,
     pub(crate) input: ValueId,
@@ -253,7 +252,7 @@ impl std::fmt::Debug for Plan {
                     .map(|s| s.name.as_str())
                     .collect::<Vec<_>>(),
             )
-            .field("buffers", &self.buffer_len.len())
+            .field("buffers", &self.segments.head_len.len())
             .finish()
     }
 }

@@ -836,7 +836,7 @@ fn row_bands_match_one_call_bitwise() {
                     let step = pw.panel_rows();
                     let mut banded = vec![f32::NAN; m * n];
                     let cut = (m / 2).next_multiple_of(step).min(m);
-                    for band in ColumnBand::split_rows(&mut banded, m, n, 0..n, &[0..cut, cut..m]) {
+                    for band in Band::split_rows(&mut banded, m, n, 0..n, &[0..cut, cut..m]) {
                         gemm_band(&pw, &b, n, band, &epi, &mut scratch);
                     }
                     let bits = |v: &[f32]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
@@ -852,7 +852,7 @@ fn row_bands_match_one_call_bitwise() {
             let pw = PackedWeights::pack(isa, &[0.0; 16 * 4], 16, 4);
             let b = [0.0; 4 * 3];
             let mut c = [0.0; 16 * 3];
-            let bands = ColumnBand::split_rows(&mut c, 16, 3, 0..3, &[0..1, 1..16]);
+            let bands = Band::split_rows(&mut c, 16, 3, 0..3, &[0..1, 1..16]);
             let inside = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
                 for band in bands {
                     let src = BSource::Matrix { data: &b, ld: 3 };

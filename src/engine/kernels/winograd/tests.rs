@@ -108,7 +108,7 @@ impl Data {
         let ranges: Vec<_> = (0..n).step_by(step).map(|s| s..(s + step).min(n)).collect();
         let mut buf = Vec::new();
         let mut scratch = GemmScratch::new();
-        for band in ColumnBand::split(&mut out, self.out_c, n, &ranges) {
+        for band in Band::split(&mut out, self.out_c, n, &ranges) {
             conv_band(&w, g, &self.x, band, &epi, (&mut buf, &mut scratch));
         }
         out
@@ -185,7 +185,7 @@ fn a_band_must_cover_whole_rows_of_tiles() {
     let n = d.g.out_h * d.g.out_w;
     let mut out = vec![0.0; d.out_c * n];
     let w = WinogradWeights::pack(Isa::Scalar, &d.w, d.out_c, d.g.in_c);
-    let band = ColumnBand::new(&mut out, d.out_c, n, 0..d.g.out_w);
+    let band = Band::new(&mut out, d.out_c, n, 0..d.g.out_w);
     conv_band(
         &w,
         &d.g,
