@@ -79,6 +79,9 @@ mod shape {
     /// Target size, in floats, of one block of packed B (256 KiB: well inside L2 together
     /// with the weights it meets).
     pub(super) const B_BLOCK_FLOATS: usize = 64 * 1024;
+    /// Most floats of packed weights that meet every column tile before the next ones are
+    /// read (256 KiB).
+    pub(super) const A_BLOCK_FLOATS: usize = 64 * 1024;
 }
 
 /// Weights (the A operand, row-major `M x K`) packed once at plan time for one instruction set.
@@ -717,7 +720,10 @@ unsafe fn run<S: Simd, const MR: usize, const NV: usize, const VM: usize, const 
     let out = &job.out;
     let mut n0 = job.cols.start;
     while n0 < job.cols.end {
-        let nb = nc.min(job.cols.end - n0);
+        // A remainder narrower than one panel joins this block rather than making a block
+        // of its own, which would stream every weight panel again for a few columns.
+        let left = job.cols.end - n0;
+        let nb = if left < nc + NV * lanes { left } else { nc };
         let total = plan_block((n0, nb), (lanes, NV, SMALL), k, &mut scratch.panels);
         let buf = scratch.buf.get(total);
         // Pack the whole block, then let each A panel (kept in L1, where the kernel's
@@ -742,29 +748,31 @@ unsafe fn run<S: Simd, const MR: usize, const NV: usize, const VM: usize, const 
         }
         let b_base = buf.as_mut_ptr().cast_const();
         let a = (a_base, a_stride, m, k);
-        for ap in 0..a_panels {
-            for p in scratch.panels.iter().filter(|p| p.nv > 0) {
-                let b = match in_place {
-                    Some((data, ld)) if p.nv == NV => (data.wrapping_add(p.n0), ld),
-                    _ => (b_base.wrapping_add(p.offset), p.width(lanes)),
-                };
-                // SAFETY: `ap` is a panel of the packed weights; B is the packed panel, or
-                // full-width columns of a matrix `check_b` bounded.
-                unsafe { tile_at::<S, MR, NV>(s, a, ap, b, p, out) };
+        for panels in a_blocks(a_panels, k * MR) {
+            for ap in panels.clone() {
+                for p in scratch.panels.iter().filter(|p| p.nv > 0) {
+                    let b = match in_place {
+                        Some((data, ld)) if p.nv == NV => (data.wrapping_add(p.n0), ld),
+                        _ => (b_base.wrapping_add(p.offset), p.width(lanes)),
+                    };
+                    // SAFETY: `ap` is a panel of the packed weights; B is the packed panel,
+                    // or full-width columns of a matrix `check_b` bounded.
+                    unsafe { tile_at::<S, MR, NV>(s, a, ap, b, p, out) };
+                }
             }
-        }
-        if let Some(p) = scratch.panels.iter().find(|p| p.nv == 0) {
-            // SAFETY: as above; the weights carry A_PAD floats of padding for the narrow
-            // vectors' over-read.
-            unsafe {
-                kernel::run_small::<S::Narrow, MR, VM>(
-                    s.narrow(),
-                    (a_base, a_stride, a_panels, m),
-                    k,
-                    b_base.add(p.offset),
-                    (p.n0, p.cols),
-                    out,
-                );
+            if let Some(p) = scratch.panels.iter().find(|p| p.nv == 0) {
+                // SAFETY: as above; the weights carry A_PAD floats of padding for the narrow
+                // vectors' over-read.
+                unsafe {
+                    kernel::run_small::<S::Narrow, MR, VM>(
+                        s.narrow(),
+                        (a_base, a_stride, panels, m),
+                        k,
+                        b_base.add(p.offset),
+                        (p.n0, p.cols),
+                        out,
+                    );
+                }
             }
         }
         if !job.act.is_cheap() {
@@ -778,6 +786,19 @@ unsafe fn run<S: Simd, const MR: usize, const NV: usize, const VM: usize, const 
         }
         n0 += nb;
     }
+}
+
+/// The weight panels in blocks that stay in L2 while every column tile of a call meets them
+/// (one block when all fit), so that large weights come from memory once per call rather
+/// than once per tile. Blocks are whole groups of the row-vectorised kernel's panels
+/// ([`kernel::SMALL_PANELS`]), which runs a lone panel on a single chain of FMAs.
+fn a_blocks(panels: usize, panel_floats: usize) -> impl Iterator<Item = Range<usize>> {
+    let block = (shape::A_BLOCK_FLOATS / panel_floats.max(1))
+        .next_multiple_of(kernel::SMALL_PANELS)
+        .max(kernel::SMALL_PANELS);
+    (0..panels)
+        .step_by(block)
+        .map(move |first| first..panels.min(first + block))
 }
 
 /// Multiplies B panel `p` (`b`: its first step and the floats between steps) by A panel `ap`

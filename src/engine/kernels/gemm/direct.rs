@@ -346,87 +346,93 @@ pub(super) unsafe fn run<S: Simd, const MR: usize, const NV: usize>(
     // The rows layout's lane masks, likewise per tile.
     let mut masks = [0u32; rows::MASKS];
     let mut masks_for = (usize::MAX, 0);
-    let mut t = lo;
-    while t < hi {
-        // The vectors left, split evenly over the fewest tiles that hold them: 4 vectors
-        // (an 8x8 output at 16 lanes) make two tiles of 2, not 3 + 1, whose lone vector
-        // would wait on 8 broadcasts per step with 8 accumulator chains.
-        let left = (hi - t).div_ceil(S::LANES);
-        let nv = left.div_ceil(left.div_ceil(NV));
-        let count = match lay {
-            Layout::Pitched(p) => pitched::pieces(
-                (t, nv * S::LANES, S::LANES),
-                (lo, hi),
-                (p.pitch, g.out_w),
-                &mut list,
-            ),
-            Layout::Planes(_) => 0,
-            Layout::Rows(_) => {
-                // The masks depend on the tile's first output column and width only: at 16
-                // or 32 outputs per row every tile (or every other) repeats the last one's.
-                let key = (t % g.out_w, nv);
-                if key != masks_for {
-                    rows::masks(g, (t, nv, S::LANES), &mut masks);
-                    masks_for = key;
+    // Weights too large to stay in L2 while every tile passes are taken a block of panels at
+    // a time, so that each panel comes from memory once per call rather than once per tile.
+    let block = (super::shape::A_BLOCK_FLOATS / (k * MR).max(1)).max(1);
+    for first in (0..a_panels).step_by(block) {
+        let panels = first..a_panels.min(first + block);
+        let mut t = lo;
+        while t < hi {
+            // The vectors left, split evenly over the fewest tiles that hold them: 4 vectors
+            // (an 8x8 output at 16 lanes) make two tiles of 2, not 3 + 1, whose lone vector
+            // would wait on 8 broadcasts per step with 8 accumulator chains.
+            let left = (hi - t).div_ceil(S::LANES);
+            let nv = left.div_ceil(left.div_ceil(NV));
+            let count = match lay {
+                Layout::Pitched(p) => pitched::pieces(
+                    (t, nv * S::LANES, S::LANES),
+                    (lo, hi),
+                    (p.pitch, g.out_w),
+                    &mut list,
+                ),
+                Layout::Planes(_) => 0,
+                Layout::Rows(_) => {
+                    // The masks depend on the tile's first output column and width only: at 16
+                    // or 32 outputs per row every tile (or every other) repeats the last one's.
+                    let key = (t % g.out_w, nv);
+                    if key != masks_for {
+                        rows::masks(g, (t, nv, S::LANES), &mut masks);
+                        masks_for = key;
+                    }
+                    0
                 }
-                0
-            }
-        };
-        for ap in 0..a_panels {
-            let rows = (ap * MR, MR.min(m - ap * MR));
-            // SAFETY: panel `ap` exists; B reads are inside the buffer (checked above); the
-            // rows layout's masks hold `kw * nv` entries for this tile and its offsets step
-            // by `dil_w` along a kernel row (`rows::offsets`); the stored columns are those
-            // of `job.cols` (caller's bounds).
-            unsafe {
-                let a_ptr = a_base.add(ap * k * MR);
-                let b_ptr = b_base.add(t);
-                macro_rules! tile_nv {
-                    ($nv:literal) => {{
-                        let acc = match lay {
-                            // 3 kernel columns: the unrolled kernel (the rows layout's
-                            // offsets step by `dil_w` along a kernel row).
-                            Layout::Rows(_) if g.kw == 3 => {
-                                kernel::tile_masked_kw::<S, MR, $nv, 3>(
+            };
+            for ap in panels.clone() {
+                let rows = (ap * MR, MR.min(m - ap * MR));
+                // SAFETY: panel `ap` exists; B reads are inside the buffer (checked above); the
+                // rows layout's masks hold `kw * nv` entries for this tile and its offsets step
+                // by `dil_w` along a kernel row (`rows::offsets`); the stored columns are those
+                // of `job.cols` (caller's bounds).
+                unsafe {
+                    let a_ptr = a_base.add(ap * k * MR);
+                    let b_ptr = b_base.add(t);
+                    macro_rules! tile_nv {
+                        ($nv:literal) => {{
+                            let acc = match lay {
+                                // 3 kernel columns: the unrolled kernel (the rows layout's
+                                // offsets step by `dil_w` along a kernel row).
+                                Layout::Rows(_) if g.kw == 3 => {
+                                    kernel::tile_masked_kw::<S, MR, $nv, 3>(
+                                        s,
+                                        (k, g.dil_w),
+                                        a_ptr,
+                                        b_ptr,
+                                        offs,
+                                        masks.as_ptr(),
+                                    )
+                                }
+                                Layout::Rows(_) => kernel::tile_masked::<S, MR, $nv>(
                                     s,
-                                    (k, g.dil_w),
+                                    (k, g.kw),
                                     a_ptr,
                                     b_ptr,
                                     offs,
                                     masks.as_ptr(),
-                                )
+                                ),
+                                _ => kernel::tile_gather::<S, MR, $nv>(s, k, a_ptr, b_ptr, offs),
+                            };
+                            match lay {
+                                Layout::Planes(_) | Layout::Rows(_) => {
+                                    store::<S, MR, $nv>(s, &acc, out, rows, (t, hi))
+                                }
+                                Layout::Pitched(_) => {
+                                    pitched::store::<S, MR, $nv>(s, &acc, out, rows, &list[..count])
+                                }
                             }
-                            Layout::Rows(_) => kernel::tile_masked::<S, MR, $nv>(
-                                s,
-                                (k, g.kw),
-                                a_ptr,
-                                b_ptr,
-                                offs,
-                                masks.as_ptr(),
-                            ),
-                            _ => kernel::tile_gather::<S, MR, $nv>(s, k, a_ptr, b_ptr, offs),
-                        };
-                        match lay {
-                            Layout::Planes(_) | Layout::Rows(_) => {
-                                store::<S, MR, $nv>(s, &acc, out, rows, (t, hi))
-                            }
-                            Layout::Pitched(_) => {
-                                pitched::store::<S, MR, $nv>(s, &acc, out, rows, &list[..count])
-                            }
-                        }
-                    }};
-                }
-                match nv {
-                    1 => tile_nv!(1),
-                    2 if NV >= 2 => tile_nv!(2),
-                    3 if NV >= 3 => tile_nv!(3),
-                    _ if NV >= 4 => tile_nv!(4),
-                    // nv <= NV by construction.
-                    _ => {}
+                        }};
+                    }
+                    match nv {
+                        1 => tile_nv!(1),
+                        2 if NV >= 2 => tile_nv!(2),
+                        3 if NV >= 3 => tile_nv!(3),
+                        _ if NV >= 4 => tile_nv!(4),
+                        // nv <= NV by construction.
+                        _ => {}
+                    }
                 }
             }
+            t += nv * S::LANES;
         }
-        t += nv * S::LANES;
     }
     if !job.act.is_cheap() {
         for row in 0..m {

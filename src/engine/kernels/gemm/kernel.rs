@@ -9,6 +9,8 @@
 //! produced it. The epilogue then adds bias, then residual, then applies the activation, in that
 //! order, again identically in vector and scalar form.
 
+use std::ops::Range;
+
 use super::super::activation::{Activation, apply_vec};
 use super::super::simd::Simd;
 
@@ -387,15 +389,19 @@ pub(super) unsafe fn store_small<
     }
 }
 
-/// The row-vectorised kernel over every A panel for the columns of one small B panel, in
+/// A panels the row-vectorised kernel takes at once for a single column.
+pub(super) const SMALL_PANELS: usize = 4;
+
+/// The row-vectorised kernel over A panels `a.2` for the columns of one small B panel, in
 /// chunks of up to 4 columns; with one column, 4 panels at a time keep 4 FMA chains in flight.
 ///
 /// # Safety
-/// As the driver's `run`, for columns `n0..n0+cols`; `b` is that panel (row width `cols`).
+/// As the driver's `run`, for columns `n0..n0+cols`; `b` is that panel (row width `cols`);
+/// the panels exist.
 #[inline(always)]
 pub(super) unsafe fn run_small<N: Simd, const MR: usize, const VM: usize>(
     s: N,
-    a: (*const f32, usize, usize, usize),
+    a: (*const f32, usize, Range<usize>, usize),
     k: usize,
     b: *const f32,
     (n0, cols): (usize, usize),
@@ -408,17 +414,25 @@ pub(super) unsafe fn run_small<N: Simd, const MR: usize, const VM: usize>(
         unsafe {
             let bj = b.add(j);
             match nb {
-                1 => small_group::<N, MR, VM, 4, 1>(s, a, k, bj, cols, n0 + j, out),
-                2 => small_group::<N, MR, VM, 2, 2>(s, a, k, bj, cols, n0 + j, out),
-                3 => small_group::<N, MR, VM, 1, 3>(s, a, k, bj, cols, n0 + j, out),
-                _ => small_group::<N, MR, VM, 1, 4>(s, a, k, bj, cols, n0 + j, out),
+                1 => small_group::<N, MR, VM, SMALL_PANELS, 1>(
+                    s,
+                    a.clone(),
+                    k,
+                    bj,
+                    cols,
+                    n0 + j,
+                    out,
+                ),
+                2 => small_group::<N, MR, VM, 2, 2>(s, a.clone(), k, bj, cols, n0 + j, out),
+                3 => small_group::<N, MR, VM, 1, 3>(s, a.clone(), k, bj, cols, n0 + j, out),
+                _ => small_group::<N, MR, VM, 1, 4>(s, a.clone(), k, bj, cols, n0 + j, out),
             }
         }
         j += nb;
     }
 }
 
-/// `NB` columns against every A panel, `PM` panels at a time, then one at a time.
+/// `NB` columns against A panels `panels`, `PM` at a time, then one at a time.
 ///
 /// # Safety
 /// As [`run_small`].
@@ -431,14 +445,14 @@ unsafe fn small_group<
     const NB: usize,
 >(
     s: N,
-    (a_base, a_stride, a_panels, m): (*const f32, usize, usize, usize),
+    (a_base, a_stride, panels, m): (*const f32, usize, Range<usize>, usize),
     k: usize,
     b: *const f32,
     bw: usize,
     n: usize,
     out: &Out,
 ) {
-    let mut ap = 0;
+    let (mut ap, a_panels) = (panels.start, panels.end);
     // SAFETY (both loops): the panels read exist (plus padding), B columns are in the panel,
     // and the stored rows are clipped to m.
     unsafe {

@@ -369,6 +369,64 @@ fn im2col_source_matches_reference() {
     }
 }
 
+/// Weights larger than one L2 block (`shape::A_BLOCK_FLOATS`) run a block of panels at a time
+/// past every column tile: a ragged last panel, a block not a whole number of the
+/// row-vectorised kernel's groups, and one- and two-column tails, on every route.
+#[test]
+fn weights_over_several_blocks_match_reference() {
+    let mut rng = Rng::new(5);
+    // 6 panels of 8 rows at most, the last ragged; k*8 floats per panel, so 4-panel blocks.
+    let (m, channels) = (44, 256);
+    let g = Conv {
+        c: channels,
+        hw: (7, 7),
+        kernel: (3, 3),
+        stride: (1, 1),
+        dil: (1, 1),
+        pad: (1, 1, 1, 1),
+    }
+    .geom();
+    let k = channels * 9;
+    assert!(8 * k * 2 < shape::A_BLOCK_FLOATS && 8 * k * 4 > shape::A_BLOCK_FLOATS);
+    let a = rng.vec(m * k);
+    let bias = rng.vec(m);
+    for isa in isas_under_test() {
+        let input = rng.vec(channels * 49);
+        let source = BSource::Im2col {
+            input: &input,
+            geom: g,
+            c0: 0,
+        };
+        let relu = Activation::Relu;
+        check(
+            isa,
+            &a,
+            (m, k, 49),
+            &source,
+            0..49,
+            Some(&bias),
+            None,
+            relu,
+            "im2col 7x7",
+        );
+        for n in [49, 50] {
+            let bm = rng.vec(k * n);
+            let source = BSource::Matrix { data: &bm, ld: n };
+            check(
+                isa,
+                &a,
+                (m, k, n),
+                &source,
+                0..n,
+                None,
+                None,
+                relu,
+                "matrix",
+            );
+        }
+    }
+}
+
 #[test]
 fn empty_and_degenerate_shapes() {
     for isa in isas_under_test() {
