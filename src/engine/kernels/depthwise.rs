@@ -242,13 +242,31 @@ struct Plane<'a> {
     has_bias: bool,
 }
 
-/// The one generic body, inlined into each instruction set's wrapper.
+/// The one generic body, inlined into each instruction set's wrapper: output rows no wider
+/// than the narrow vectors run on them (a 7-wide row fills 7 of AVX-512's 16 lanes but 7 of
+/// its ymm's 8), the rest on the full ones. Lanes never mix, so both give the same bits.
+///
+/// # Safety
+/// As [`planes`].
+#[inline(always)]
+unsafe fn run<S: Simd>(s: S, job: &Job<'_>) {
+    // SAFETY: forwarded from the caller.
+    unsafe {
+        if S::Narrow::LANES < S::LANES && job.g.out_w <= S::Narrow::LANES {
+            planes(s.narrow(), job);
+        } else {
+            planes(s, job);
+        }
+    }
+}
+
+/// Every channel of `job`, a tile at a time.
 ///
 /// # Safety
 /// `job.out` (and `job.residual` if not null) must be valid for the planes of the channels in
 /// `job.channels`, counted from `job.channels.start`; the input holds `in_c` planes.
 #[inline(always)]
-unsafe fn run<S: Simd>(s: S, job: &Job<'_>) {
+unsafe fn planes<S: Simd>(s: S, job: &Job<'_>) {
     let g = job.g;
     let w = job.w;
     let mult = w.out_c / g.in_c;
