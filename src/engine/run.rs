@@ -4,11 +4,13 @@
 //! GEMM computes column by column in a fixed order), so a sample's result never depends on
 //! the batch it rides in.
 //!
-//! Threads: a pass may be given a thread pool ([`Team`]); each convolution of a sample is then
-//! spread over the pool's threads, by output columns, channels (depthwise) or groups. Every
-//! output element is computed by the same kernel sequence whichever part it falls in (see
-//! `kernels::gemm`), so the results do not depend on the thread count. The other steps are
-//! cheap next to the convolutions and run on the thread that runs the pass.
+//! Threads: a pass may be given a thread pool ([`Team`]); each large enough step of a sample
+//! is then spread over the pool's threads: convolutions by output columns, rows of weights,
+//! channels (depthwise) or groups; dense layers by rows of weights; element-wise ops and
+//! pools by channels or runs of elements. Every output element is computed by the same kernel
+//! sequence whichever part it falls in (see `kernels::gemm`), so the results do not depend on
+//! the thread count. Small steps, and the cheap ones that move data (copies, concatenation,
+//! padding), run on the thread that runs the pass.
 //!
 //! Memory and order: a batch goes through the plan in slices of at most
 //! [`Plan::slice_samples`] samples, so a workspace holds the activations of one slice, not of
@@ -25,7 +27,8 @@ use rayon_core::ThreadPool;
 
 use super::kernels::activation::Activation;
 use super::kernels::elementwise::Broadcast;
-use super::kernels::gemm::{BSource, Band, Epilogue, GemmScratch, PackedWeights, gemm, gemm_band};
+use super::kernels::gemm::{BSource, Band, Epilogue, GemmScratch, PackedWeights, gemm_band};
+use super::kernels::pool::PoolGeom;
 use super::kernels::simd::Machine;
 use super::kernels::{depthwise, elementwise, layout, norm, pool, vmath, winograd};
 use super::plan::{ConvKind, ConvStep, Plan, StepKind};
@@ -324,7 +327,7 @@ impl Plan {
                 features,
             } => {
                 let layer = (weights, bias.as_deref(), *act, *features);
-                dense(layer, input, out, tmp, &mut scratches[0].gemm);
+                dense(layer, input, out, tmp, (scratches, team));
             }
             StepKind::Binary {
                 kind,
@@ -350,6 +353,19 @@ impl Plan {
                         (scratches, team),
                     );
                 }
+            }
+            StepKind::MaxPool(g) => {
+                let f = |g: &PoolGeom, x: &[f32], o: &mut [f32]| pool::max_pool(g, x, o);
+                pool_spread(g, f, (input, batch), out, (scratches, team));
+            }
+            StepKind::AvgPool {
+                geom,
+                count_include_pad,
+            } => {
+                let f = |g: &PoolGeom, x: &[f32], o: &mut [f32]| {
+                    pool::avg_pool(g, *count_include_pad, x, o);
+                };
+                pool_spread(geom, f, (input, batch), out, (scratches, team));
             }
             StepKind::GlobalAvgPool { c, plane } => {
                 global_pool_spread((*c, *plane), input, out, (scratches, team));
@@ -406,7 +422,7 @@ fn dense(
     input: &[f32],
     out: &mut [f32],
     tmp: &mut Vec<f32>,
-    scratch: &mut GemmScratch,
+    (scratches, team): (&mut [PartScratch], Team<'_>),
 ) {
     let epi = Epilogue {
         bias,
@@ -415,26 +431,38 @@ fn dense(
     };
     let columns = input.len() / features;
     let outputs = out.len() / columns;
-    // C is [outputs, columns]; the value layout is [columns, outputs], so transpose after.
-    if tmp.len() < out.len() {
-        tmp.resize(out.len(), 0.0);
-    }
-    gemm(
-        weights,
-        &BSource::MatrixT {
-            data: input,
-            ld: features,
-        },
-        columns,
-        0..columns,
-        &mut tmp[..out.len()],
-        columns,
-        &epi,
-        scratch,
+    let b = BSource::MatrixT {
+        data: input,
+        ld: features,
+    };
+    // C is [outputs, columns]; the value layout is [columns, outputs], so one column is C
+    // itself, and more are transposed after.
+    let c = if columns == 1 {
+        &mut *out
+    } else {
+        if tmp.len() < out.len() {
+            tmp.resize(out.len(), 0.0);
+        }
+        &mut tmp[..out.len()]
+    };
+    // A layer is shared out by rows of weights (every part reads only its own): the one
+    // image of a pass on several threads meets a dense layer as a matrix-vector product
+    // whose time is the weights' reading.
+    let (scratches, team) = team_for(
+        outputs * columns * features,
+        SPREAD_MIN_MULTIPLY_ADDS,
+        (scratches, team),
     );
-    for c in 0..columns {
-        for o in 0..outputs {
-            out[c * outputs + o] = tmp[o * columns + c];
+    let rows = share(outputs, scratches.len(), weights.panel_rows());
+    let bands = Band::split_rows(c, outputs, columns, 0..columns, &rows);
+    spread(team, bands, scratches, |c, part| {
+        gemm_band(weights, &b, columns, c, &epi, &mut part.gemm);
+    });
+    if columns > 1 {
+        for c in 0..columns {
+            for o in 0..outputs {
+                out[c * outputs + o] = tmp[o * columns + c];
+            }
         }
     }
 }
@@ -447,11 +475,6 @@ fn per_sample(kind: &StepKind, input: &[f32], out: &mut [f32], sums: &mut Vec<f6
             shift,
             inner,
         } => pool::channel_affine(scale, shift, *inner, input, out),
-        StepKind::MaxPool(g) => pool::max_pool(g, input, out),
-        StepKind::AvgPool {
-            geom,
-            count_include_pad,
-        } => pool::avg_pool(geom, *count_include_pad, input, out),
         StepKind::Softmax { c, inner } => pool::softmax(*c, *inner, input, out),
         StepKind::Pad {
             c,
@@ -479,6 +502,8 @@ fn per_sample(kind: &StepKind, input: &[f32], out: &mut [f32], sums: &mut Vec<f6
         | StepKind::Dense { .. }
         | StepKind::Binary { .. }
         | StepKind::GlobalAvgPool { .. }
+        | StepKind::MaxPool(_)
+        | StepKind::AvgPool { .. }
         | StepKind::Concat { .. }
         | StepKind::Act(_) => unreachable!("run by Plan::run_step"),
     }
@@ -649,6 +674,36 @@ fn global_pool_spread(
         let chunks = planes(o, None, 1, &ranges);
         spread(team, chunks, &mut *scratches, |(r, o, _), _| {
             pool::global_avg_pool(r.len(), plane, &x[r.start * plane..r.end * plane], o);
+        });
+    }
+}
+
+/// A pooling window over the samples of `input` (`batch` of them), each sample's channels
+/// shared out over the team where its input is large enough; `pool` computes the channels of
+/// the geometry it is given.
+fn pool_spread(
+    g: &PoolGeom,
+    pool: impl Fn(&PoolGeom, &[f32], &mut [f32]) + Sync,
+    (input, batch): (&[f32], usize),
+    out: &mut [f32],
+    (scratches, team): (&mut [PartScratch], Team<'_>),
+) {
+    let (in_plane, out_plane) = (g.in_h * g.in_w, g.out_h * g.out_w);
+    let (scratches, team) = team_for(g.c * in_plane, SPREAD_MIN_ELEMENTS, (scratches, team));
+    let samples = input
+        .chunks_exact(g.c * in_plane)
+        .zip(out.chunks_exact_mut(g.c * out_plane))
+        .take(batch);
+    for (x, o) in samples {
+        if team.is_none() {
+            pool(g, x, o);
+            continue;
+        }
+        let ranges = share(g.c, scratches.len(), 1);
+        let chunks = planes(o, None, out_plane, &ranges);
+        spread(team, chunks, &mut *scratches, |(r, o, _), _| {
+            let part = PoolGeom { c: r.len(), ..*g };
+            pool(&part, &x[r.start * in_plane..r.end * in_plane], o);
         });
     }
 }
@@ -1014,6 +1069,129 @@ mod tests {
             }
         }
         same_bits_on_teams(&alone, run);
+    }
+
+    /// Max and average pooling (3×3 windows, stride 2, padding 1, as ResNet's stem pools) on
+    /// an input large enough to be shared out by channels: against the definition in f64
+    /// (PyTorch's `MaxPool2d` and `AvgPool2d` with `count_include_pad=False` document the same
+    /// windows) and bit for bit on 1, 2 and 3 threads.
+    #[test]
+    fn pools_on_any_thread_count() {
+        let (c, h, w) = (20, 60, 60); // 72,000 floats: over SPREAD_MIN_ELEMENTS
+        let input = SplitMix64::new(41).vec(c * h * w, -1.0, 1.0);
+        let (oh, ow) = (30, 30);
+        for max in [true, false] {
+            let (kernel, stride, padding) = ([3, 3], Some([2, 2]), [1; 4]);
+            let op = if max {
+                Op::MaxPool {
+                    kernel,
+                    stride,
+                    padding,
+                    dilation: [1, 1],
+                    ceil_mode: false,
+                }
+            } else {
+                Op::AvgPool {
+                    kernel,
+                    stride,
+                    padding,
+                    ceil_mode: false,
+                    count_include_pad: false,
+                }
+            };
+            let mut b = GraphBuilder::new("x", &[c, h, w]);
+            let x = b.input();
+            let y = b.node("pool", op, &[&x]);
+            let plan = Plan::new(
+                &bundle_of("pool", b, &y, &[c, h, w]),
+                Isa::detect().unwrap(),
+            );
+            let run = |team: Team<'_>| {
+                let mut out = vec![0.0; plan.output_len()];
+                plan.run_in_slices(&input, 1, &mut Workspace::new(), &mut out, (1, 1), team);
+                out
+            };
+            let alone = run(None);
+            for (k, &got) in alone.iter().enumerate() {
+                let (ch, oy, ox) = (k / (oh * ow), k / ow % oh, k % ow);
+                let taps: Vec<f64> = (0..9)
+                    .filter_map(|t| {
+                        let (y, x) = (
+                            (2 * oy + t / 3).checked_sub(1)?,
+                            (2 * ox + t % 3).checked_sub(1)?,
+                        );
+                        (y < h && x < w).then(|| f64::from(input[(ch * h + y) * w + x]))
+                    })
+                    .collect();
+                let want = if max {
+                    taps.iter().copied().fold(f64::NEG_INFINITY, f64::max)
+                } else {
+                    taps.iter().sum::<f64>() / taps.len() as f64
+                };
+                assert!(
+                    (f64::from(got) - want).abs() <= 1e-6,
+                    "{max} output {k}: {got} vs {want}"
+                );
+            }
+            same_bits_on_teams(&alone, run);
+        }
+    }
+
+    /// A dense layer of one image large enough to be shared out by rows of weights (a
+    /// matrix-vector product of 700 x 500 multiply-adds, over SPREAD_MIN_MULTIPLY_ADDS), and a
+    /// small one after it that is not: against the definition in f64 (common practice: PyTorch's
+    /// `Linear` documents `y = x W^T + b`) and bit for bit on 1, 2 and 3 threads, with one
+    /// sample and with two (a team's pass holds fewer samples than threads).
+    #[test]
+    fn dense_layers_on_any_thread_count() {
+        let (features, hidden, classes) = (700, 500, 10);
+        let mut rng = SplitMix64::new(31);
+        let mut b = GraphBuilder::new("x", &[features]);
+        let x = b.input();
+        let w1 = rng.vec(hidden * features, -0.1, 0.1);
+        let b1 = rng.vec(hidden, -0.1, 0.1);
+        let w2 = rng.vec(classes * hidden, -0.1, 0.1);
+        let t1 = b.tensor("d1.w", &[hidden, features], w1.clone());
+        let tb = b.tensor("d1.b", &[hidden], b1.clone());
+        let d1 = b.dense("d1", t1, Some(tb), &x);
+        let t2 = b.tensor("d2.w", &[classes, hidden], w2.clone());
+        let d2 = b.dense("d2", t2, None, &d1);
+        let bundle = bundle_of("dense", b, &d2, &[features]);
+        let plan = Plan::new(&bundle, Isa::detect().unwrap());
+        for batch in [1, 2] {
+            let input = rng.vec(batch * features, -1.0, 1.0);
+            let run = |team: Team<'_>| {
+                let mut out = vec![0.0; batch * plan.output_len()];
+                let sizes = (batch, batch);
+                plan.run_in_slices(&input, batch, &mut Workspace::new(), &mut out, sizes, team);
+                out
+            };
+            let alone = run(None);
+            for s in 0..batch {
+                let xs = &input[s * features..][..features];
+                let h: Vec<f64> = (0..hidden)
+                    .map(|o| {
+                        let row = &w1[o * features..][..features];
+                        let dot: f64 = row
+                            .iter()
+                            .zip(xs)
+                            .map(|(&w, &v)| f64::from(w) * f64::from(v))
+                            .sum();
+                        dot + f64::from(b1[o])
+                    })
+                    .collect();
+                for k in 0..classes {
+                    let row = &w2[k * hidden..][..hidden];
+                    let want: f64 = row.iter().zip(&h).map(|(&w, &v)| f64::from(w) * v).sum();
+                    let got = f64::from(alone[s * classes + k]);
+                    assert!(
+                        (got - want).abs() <= 1e-4,
+                        "sample {s}, class {k}: {got} vs {want}"
+                    );
+                }
+            }
+            same_bits_on_teams(&alone, run);
+        }
     }
 
     /// Slicing a batch, and chunking the head of a pass, must not change a single bit of any
