@@ -913,12 +913,12 @@ mod tests {
         }
     }
 
-    /// Two 3×3 convolutions, 32 → 32 channels at 24×24 (36 tiles: the Winograd route), the
+    /// Two 3×3 convolutions, 32 → 32 channels at 40×40 (100 tiles: the Winograd route), the
     /// second with a residual add of the block's input and a ReLU fused in: bundle, plan and
     /// runner around `kernels::winograd`.
     fn winograd_block() -> (Bundle, Vec<f32>, Vec<f32>) {
         const C: usize = 32;
-        const S: usize = 24;
+        const S: usize = 40;
         let mut rng = SplitMix64::new(21);
         let mut b = GraphBuilder::new("x", &[C, S, S]);
         let x = b.input();
@@ -956,7 +956,7 @@ mod tests {
     /// padding 1 (common practice; PyTorch's `Conv2d` documents the same sum).
     fn winograd_block_reference(weights: &[f32], x: &[f32]) -> Vec<f64> {
         const C: usize = 32;
-        const S: usize = 24;
+        const S: usize = 40;
         let conv = |w: &[f32], x: &[f64]| {
             let mut y = vec![0.0f64; C * S * S];
             for o in 0..C {

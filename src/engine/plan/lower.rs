@@ -152,9 +152,14 @@ fn winograd_pays(geom: &ConvGeom, groups: usize, out_c: usize) -> bool {
 // to 19.0 images/s. (An AVX2 EPYC, the same day, had run the 512-channel layers
 // 10–15 % faster by Winograd: its caches fed the fourfold weights better.) Earlier, AVX2:
 // LeNet's 16 → 32 layer at 14×14 ran 10–25 % faster as one GEMM, ResNet-20's 16 → 16 layers
-// at 32×32 the same either way.
+// at 32×32 the same either way. Later the same day, once the direct GEMM route read its input
+// with masked loads, its 128-channel 28×28 layers (49 tiles) took 1.57–1.65 ms as one GEMM
+// against 1.73–1.96 ms by Winograd at batch 1 (47–49 against 55–61 ms at batch 32, 0.84–0.92
+// against 1.04–1.32 ms on two threads), while the 56×56 layers still ran faster by Winograd on
+// one thread (1.41–1.52 against 1.60–1.68 ms; 47–50 against 52–59 ms at batch 32). Hence a
+// limit between 49 and 196 tiles.
 const WINOGRAD_MIN_CHANNELS: usize = 32;
-const WINOGRAD_MIN_TILES: usize = 32;
+const WINOGRAD_MIN_TILES: usize = 100;
 
 /// Every kind but convolutions and binary ops.
 fn other(
