@@ -103,7 +103,7 @@ fn conv(kind: IrKind<'_>, isa: Isa, in_shape: &[usize], out_shape: &[usize]) -> 
     };
     let kind = if groups > 1 && icg == 1 && groups == in_shape[0] {
         ConvKind::Depthwise(PackedDepthwise::pack(isa, &weight, oc, kh, kw))
-    } else if winograd_pays(&geom, groups, oc) {
+    } else if winograd_pays(isa, &geom, groups, oc) {
         ConvKind::Winograd(WinogradWeights::pack(isa, &weight, oc, icg))
     } else {
         let ocg = oc / groups;
@@ -136,12 +136,16 @@ fn conv(kind: IrKind<'_>, isa: Isa, in_shape: &[usize], out_shape: &[usize]) -> 
 /// Its 36 GEMMs have one column per 4×4 tile and read four times the weights a direct GEMM
 /// does, so a small plane makes them short and the weight traffic dominates: they pay only
 /// with tiles enough to reuse each transformed weight.
-fn winograd_pays(geom: &ConvGeom, groups: usize, out_c: usize) -> bool {
+fn winograd_pays(isa: Isa, geom: &ConvGeom, groups: usize, out_c: usize) -> bool {
     let tiles = geom.out_h.div_ceil(winograd::TILE) * geom.out_w.div_ceil(winograd::TILE);
+    let min_tiles = match isa {
+        Isa::Avx512 => WINOGRAD_MIN_TILES_MASKED,
+        _ => WINOGRAD_MIN_TILES,
+    };
     winograd::fits(geom, groups)
         && geom.in_c >= WINOGRAD_MIN_CHANNELS
         && out_c >= WINOGRAD_MIN_CHANNELS
-        && tiles >= WINOGRAD_MIN_TILES
+        && tiles >= min_tiles
 }
 
 // The limits of [`winograd_pays`], measured with `convoy bench --local --steps`, one thread.
@@ -157,9 +161,10 @@ fn winograd_pays(geom: &ConvGeom, groups: usize, out_c: usize) -> bool {
 // against 1.73–1.96 ms by Winograd at batch 1 (47–49 against 55–61 ms at batch 32, 0.84–0.92
 // against 1.04–1.32 ms on two threads), while the 56×56 layers still ran faster by Winograd on
 // one thread (1.41–1.52 against 1.60–1.68 ms; 47–50 against 52–59 ms at batch 32). Hence a
-// limit between 49 and 196 tiles.
+// limit between 49 and 196 tiles where that route applies (AVX-512); the others keep 32.
 const WINOGRAD_MIN_CHANNELS: usize = 32;
-const WINOGRAD_MIN_TILES: usize = 100;
+const WINOGRAD_MIN_TILES: usize = 32;
+const WINOGRAD_MIN_TILES_MASKED: usize = 100;
 
 /// Every kind but convolutions and binary ops.
 fn other(
