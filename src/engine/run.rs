@@ -355,20 +355,24 @@ impl Plan {
                 }
             }
             StepKind::MaxPool(g) => {
-                let f = |g: &PoolGeom, x: &[f32], o: &mut [f32]| pool::max_pool(g, x, o);
-                pool_spread(g, f, (input, batch), out, (scratches, team));
+                let sizes = (g.c, g.in_h * g.in_w, g.out_h * g.out_w);
+                by_channels(sizes, input, out, (scratches, team), |r, x, o| {
+                    pool::max_pool(&PoolGeom { c: r.len(), ..*g }, x, o);
+                });
             }
             StepKind::AvgPool {
-                geom,
+                geom: g,
                 count_include_pad,
             } => {
-                let f = |g: &PoolGeom, x: &[f32], o: &mut [f32]| {
-                    pool::avg_pool(g, *count_include_pad, x, o);
-                };
-                pool_spread(geom, f, (input, batch), out, (scratches, team));
+                let sizes = (g.c, g.in_h * g.in_w, g.out_h * g.out_w);
+                by_channels(sizes, input, out, (scratches, team), |r, x, o| {
+                    pool::avg_pool(&PoolGeom { c: r.len(), ..*g }, *count_include_pad, x, o);
+                });
             }
             StepKind::GlobalAvgPool { c, plane } => {
-                global_pool_spread((*c, *plane), input, out, (scratches, team));
+                by_channels((*c, *plane, 1), input, out, (scratches, team), |r, x, o| {
+                    pool::global_avg_pool(r.len(), *plane, x, o);
+                });
             }
             StepKind::Concat { outer, blocks } => {
                 self.concat(&step.inputs, (*outer, blocks), buffers, samples, out);
@@ -656,54 +660,30 @@ fn binary_spread(
     });
 }
 
-/// Global average pooling of the samples of `input` (`[c, plane]` each) into `out` (`c`
-/// each), each sample's channels shared out over the team where its input is large enough.
-fn global_pool_spread(
-    (c, plane): (usize, usize),
+/// A step whose output channel `k` reads input channel `k` alone (the pools), over the samples
+/// of `input` (`[c, in_plane]` each) into `out` (`[c, out_plane]` each), each sample's channels
+/// shared out over the team where its input is large enough: `f(channels, x, o)` computes
+/// `channels` from their input planes `x` into their output planes `o`.
+fn by_channels(
+    (c, in_plane, out_plane): (usize, usize, usize),
     input: &[f32],
     out: &mut [f32],
     (scratches, team): (&mut [PartScratch], Team<'_>),
+    f: impl Fn(Range<usize>, &[f32], &mut [f32]) + Sync,
 ) {
-    let (scratches, team) = team_for(c * plane, SPREAD_MIN_ELEMENTS, (scratches, team));
-    for (x, o) in input.chunks_exact(c * plane).zip(out.chunks_exact_mut(c)) {
+    let (scratches, team) = team_for(c * in_plane, SPREAD_MIN_ELEMENTS, (scratches, team));
+    for (x, o) in input
+        .chunks_exact(c * in_plane)
+        .zip(out.chunks_exact_mut(c * out_plane))
+    {
         if team.is_none() {
-            pool::global_avg_pool(c, plane, x, o);
+            f(0..c, x, o);
             continue;
         }
         let ranges = share(c, scratches.len(), 1);
-        let chunks = planes(o, None, 1, &ranges);
-        spread(team, chunks, &mut *scratches, |(r, o, _), _| {
-            pool::global_avg_pool(r.len(), plane, &x[r.start * plane..r.end * plane], o);
-        });
-    }
-}
-
-/// A pooling window over the samples of `input` (`batch` of them), each sample's channels
-/// shared out over the team where its input is large enough; `pool` computes the channels of
-/// the geometry it is given.
-fn pool_spread(
-    g: &PoolGeom,
-    pool: impl Fn(&PoolGeom, &[f32], &mut [f32]) + Sync,
-    (input, batch): (&[f32], usize),
-    out: &mut [f32],
-    (scratches, team): (&mut [PartScratch], Team<'_>),
-) {
-    let (in_plane, out_plane) = (g.in_h * g.in_w, g.out_h * g.out_w);
-    let (scratches, team) = team_for(g.c * in_plane, SPREAD_MIN_ELEMENTS, (scratches, team));
-    let samples = input
-        .chunks_exact(g.c * in_plane)
-        .zip(out.chunks_exact_mut(g.c * out_plane))
-        .take(batch);
-    for (x, o) in samples {
-        if team.is_none() {
-            pool(g, x, o);
-            continue;
-        }
-        let ranges = share(g.c, scratches.len(), 1);
         let chunks = planes(o, None, out_plane, &ranges);
         spread(team, chunks, &mut *scratches, |(r, o, _), _| {
-            let part = PoolGeom { c: r.len(), ..*g };
-            pool(&part, &x[r.start * in_plane..r.end * in_plane], o);
+            f(r.clone(), &x[r.start * in_plane..r.end * in_plane], o);
         });
     }
 }
