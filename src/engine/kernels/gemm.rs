@@ -693,7 +693,7 @@ unsafe fn run<S: Simd, const MR: usize, const NV: usize, const VM: usize, const 
         let channels = job.a.k / (geom.kh * geom.kw);
         let lay = direct::Layout::new(&geom, channels, S::FAST_MASKED_LOAD);
         let take = match scratch.algo {
-            Im2colAlgo::Auto => lay.pays_off(&geom, channels),
+            Im2colAlgo::Auto => lay.pays_off(&geom, channels, (job.a.m, S::LANES)),
             Im2colAlgo::Packed => false,
             Im2colAlgo::Direct => true,
         };

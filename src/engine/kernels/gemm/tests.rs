@@ -762,7 +762,7 @@ fn direct_layout_choice() {
         .geom();
         let lay = direct::Layout::new(&g, c, false);
         assert_eq!(matches!(lay, direct::Layout::Pitched(_)), pitched, "{g:?}");
-        assert_eq!(lay.pays_off(&g, c), direct, "{g:?}");
+        assert_eq!(lay.pays_off(&g, c, (c, 16)), direct, "{g:?}");
     }
 }
 
@@ -773,6 +773,8 @@ fn direct_rows_layout_where_masked_loads_are_fast() {
     let cases = [
         (3, 32, 3, 1, 1, true),   // the ResNet-20 stem
         (64, 8, 3, 1, 1, true),   // its 8x8 stage
+        (512, 7, 3, 1, 1, true),  // ResNet-18's last stage: 49 of 64 lanes, so packed
+        (256, 14, 3, 1, 1, true), // and its 14x14 one: 196 of 208
         (2, 12, 5, 1, 0, false),  // unpadded: outputs narrower than the input
         (16, 32, 3, 2, 1, false), // strided
     ];
@@ -789,7 +791,10 @@ fn direct_rows_layout_where_masked_loads_are_fast() {
         let lay = direct::Layout::new(&g, c, true);
         assert_eq!(matches!(lay, direct::Layout::Rows(_)), rows, "{g:?}");
         if rows {
-            assert!(lay.pays_off(&g, c), "{g:?}");
+            // More than an eighth of 16-lane vectors left empty, with rows enough: the
+            // packed route.
+            assert_eq!(lay.pays_off(&g, c, (c, 16)), hw != 7, "{g:?}");
+            assert!(lay.pays_off(&g, c, (8, 16)), "{g:?}");
         } else {
             assert_eq!(lay, direct::Layout::new(&g, c, false), "{g:?}");
         }
