@@ -245,6 +245,20 @@ struct Conv {
 }
 
 impl Conv {
+    /// A 3×3 convolution at stride 1 with padding 1 (output as large as the input): `c`
+    /// channels of `hw × hw`.
+    fn same_3x3(c: usize, hw: usize) -> ConvGeom {
+        Conv {
+            c,
+            hw: (hw, hw),
+            kernel: (3, 3),
+            stride: (1, 1),
+            dil: (1, 1),
+            pad: (1, 1, 1, 1),
+        }
+        .geom()
+    }
+
     fn geom(&self) -> ConvGeom {
         let out = |size: usize, k: usize, s: usize, d: usize, p0: usize, p1: usize| {
             (size + p0 + p1 - d * (k - 1) - 1) / s + 1
@@ -377,51 +391,37 @@ fn weights_over_several_blocks_match_reference() {
     let mut rng = Rng::new(5);
     // 6 panels of 8 rows at most, the last ragged; k*8 floats per panel, so 4-panel blocks.
     let (m, channels) = (44, 256);
-    let g = Conv {
-        c: channels,
-        hw: (7, 7),
-        kernel: (3, 3),
-        stride: (1, 1),
-        dil: (1, 1),
-        pad: (1, 1, 1, 1),
-    }
-    .geom();
+    let g = Conv::same_3x3(channels, 7);
     let k = channels * 9;
     assert!(8 * k * 2 < shape::A_BLOCK_FLOATS && 8 * k * 4 > shape::A_BLOCK_FLOATS);
     let a = rng.vec(m * k);
     let bias = rng.vec(m);
-    for isa in isas_under_test() {
-        let input = rng.vec(channels * 49);
-        let source = BSource::Im2col {
+    let input = rng.vec(channels * 49);
+    let matrices: Vec<(Vec<f32>, usize)> = [49, 50].map(|n| (rng.vec(k * n), n)).into();
+    let mut sources = vec![(
+        BSource::Im2col {
             input: &input,
             geom: g,
             c0: 0,
-        };
-        let relu = Activation::Relu;
-        check(
-            isa,
-            &a,
-            (m, k, 49),
-            &source,
-            0..49,
-            Some(&bias),
-            None,
-            relu,
-            "im2col 7x7",
-        );
-        for n in [49, 50] {
-            let bm = rng.vec(k * n);
-            let source = BSource::Matrix { data: &bm, ld: n };
+        },
+        49,
+    )];
+    for (bm, n) in &matrices {
+        sources.push((BSource::Matrix { data: bm, ld: *n }, *n));
+    }
+    for isa in isas_under_test() {
+        for (source, n) in &sources {
+            let (act, what) = (Activation::Relu, "weights over several blocks");
             check(
                 isa,
                 &a,
-                (m, k, n),
-                &source,
-                0..n,
+                (m, k, *n),
+                source,
+                0..*n,
+                Some(&bias),
                 None,
-                None,
-                relu,
-                "matrix",
+                act,
+                what,
             );
         }
     }
@@ -621,15 +621,7 @@ fn simd_paths_agree_bitwise_on_convolutions() {
 #[test]
 fn scratch_stops_allocating() {
     let mut rng = Rng::new(5);
-    let g = Conv {
-        c: 16,
-        hw: (32, 32),
-        kernel: (3, 3),
-        stride: (1, 1),
-        dil: (1, 1),
-        pad: (1, 1, 1, 1),
-    }
-    .geom();
+    let g = Conv::same_3x3(16, 32);
     let input = rng.vec(16 * 32 * 32);
     for isa in isas_under_test() {
         let (m, k, n) = (16, 144, 1024);
