@@ -354,25 +354,8 @@ impl Plan {
                     );
                 }
             }
-            StepKind::MaxPool(g) => {
-                let sizes = (g.c, g.in_h * g.in_w, g.out_h * g.out_w);
-                by_channels(sizes, input, out, (scratches, team), |r, x, o| {
-                    pool::max_pool(&PoolGeom { c: r.len(), ..*g }, x, o);
-                });
-            }
-            StepKind::AvgPool {
-                geom: g,
-                count_include_pad,
-            } => {
-                let sizes = (g.c, g.in_h * g.in_w, g.out_h * g.out_w);
-                by_channels(sizes, input, out, (scratches, team), |r, x, o| {
-                    pool::avg_pool(&PoolGeom { c: r.len(), ..*g }, *count_include_pad, x, o);
-                });
-            }
-            StepKind::GlobalAvgPool { c, plane } => {
-                by_channels((*c, *plane, 1), input, out, (scratches, team), |r, x, o| {
-                    pool::global_avg_pool(r.len(), *plane, x, o);
-                });
+            StepKind::MaxPool(_) | StepKind::AvgPool { .. } | StepKind::GlobalAvgPool { .. } => {
+                pool_step(&step.kind, input, out, (scratches, team));
             }
             StepKind::Concat { outer, blocks } => {
                 self.concat(&step.inputs, (*outer, blocks), buffers, samples, out);
@@ -685,6 +668,38 @@ fn by_channels(
         spread(team, chunks, &mut *scratches, |(r, o, _), _| {
             f(r.clone(), &x[r.start * in_plane..r.end * in_plane], o);
         });
+    }
+}
+
+/// A pooling step over the samples of `input` into `out`, shared out by channels
+/// ([`by_channels`]).
+fn pool_step(
+    kind: &StepKind,
+    input: &[f32],
+    out: &mut [f32],
+    (scratches, team): (&mut [PartScratch], Team<'_>),
+) {
+    let window_sizes = |g: &PoolGeom| (g.c, g.in_h * g.in_w, g.out_h * g.out_w);
+    match kind {
+        StepKind::MaxPool(g) => {
+            by_channels(window_sizes(g), input, out, (scratches, team), |r, x, o| {
+                pool::max_pool(&PoolGeom { c: r.len(), ..*g }, x, o);
+            });
+        }
+        StepKind::AvgPool {
+            geom: g,
+            count_include_pad,
+        } => {
+            by_channels(window_sizes(g), input, out, (scratches, team), |r, x, o| {
+                pool::avg_pool(&PoolGeom { c: r.len(), ..*g }, *count_include_pad, x, o);
+            });
+        }
+        StepKind::GlobalAvgPool { c, plane } => {
+            by_channels((*c, *plane, 1), input, out, (scratches, team), |r, x, o| {
+                pool::global_avg_pool(r.len(), *plane, x, o);
+            });
+        }
+        _ => unreachable!("not a pooling step"),
     }
 }
 
