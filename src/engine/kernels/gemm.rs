@@ -748,7 +748,7 @@ unsafe fn run<S: Simd, const MR: usize, const NV: usize, const VM: usize, const 
         }
         let b_base = buf.as_mut_ptr().cast_const();
         let a = (a_base, a_stride, m, k);
-        for panels in a_blocks(a_panels, k * MR) {
+        for panels in a_blocks(a_panels, k * MR, kernel::SMALL_PANELS) {
             for ap in panels.clone() {
                 for p in scratch.panels.iter().filter(|p| p.nv > 0) {
                     let b = match in_place {
@@ -790,12 +790,17 @@ unsafe fn run<S: Simd, const MR: usize, const NV: usize, const VM: usize, const 
 
 /// The weight panels in blocks that stay in L2 while every column tile of a call meets them
 /// (one block when all fit), so that large weights come from memory once per call rather
-/// than once per tile. Blocks are whole groups of the row-vectorised kernel's panels
-/// ([`kernel::SMALL_PANELS`]), which runs a lone panel on a single chain of FMAs.
-fn a_blocks(panels: usize, panel_floats: usize) -> impl Iterator<Item = Range<usize>> {
+/// than once per tile. Blocks are whole groups of `group` panels: the packed route passes the
+/// row-vectorised kernel's ([`kernel::SMALL_PANELS`]), which runs a lone panel on a single
+/// chain of FMAs; the direct route, which has no such kernel, passes 1.
+fn a_blocks(
+    panels: usize,
+    panel_floats: usize,
+    group: usize,
+) -> impl Iterator<Item = Range<usize>> {
     let block = (shape::A_BLOCK_FLOATS / panel_floats.max(1))
-        .next_multiple_of(kernel::SMALL_PANELS)
-        .max(kernel::SMALL_PANELS);
+        .next_multiple_of(group)
+        .max(group);
     (0..panels)
         .step_by(block)
         .map(move |first| first..panels.min(first + block))

@@ -367,11 +367,7 @@ pub(super) unsafe fn run<S: Simd, const MR: usize, const NV: usize>(
     // The rows layout's lane masks, likewise per tile.
     let mut masks = [0u32; rows::MASKS];
     let mut masks_for = (usize::MAX, 0);
-    // Weights too large to stay in L2 while every tile passes are taken a block of panels at
-    // a time, so that each panel comes from memory once per call rather than once per tile.
-    let block = (super::shape::A_BLOCK_FLOATS / (k * MR).max(1)).max(1);
-    for first in (0..a_panels).step_by(block) {
-        let panels = first..a_panels.min(first + block);
+    for panels in super::a_blocks(a_panels, k * MR, 1) {
         let mut t = lo;
         while t < hi {
             // The vectors left, split evenly over the fewest tiles that hold them: 4 vectors
