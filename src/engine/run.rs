@@ -895,8 +895,16 @@ mod tests {
         Bundle::from_bytes(w.to_bytes().unwrap()).unwrap()
     }
 
-    /// `run` gives `alone`'s bits (its result without a team) on teams of 2 and 3 threads.
-    fn same_bits_on_teams(alone: &[f32], run: impl Fn(Team<'_>) -> Vec<f32> + Sync) {
+    /// `batch` samples of `input` through `plan` in one pass without a team, checked to give
+    /// the same bits on teams of 2 and 3 threads; returns the output without a team.
+    fn run_on_teams(plan: &Plan, input: &[f32], batch: usize) -> Vec<f32> {
+        let run = |team: Team<'_>| {
+            let mut out = vec![0.0; batch * plan.output_len()];
+            let sizes = (batch, batch);
+            plan.run_in_slices(input, batch, &mut Workspace::new(), &mut out, sizes, team);
+            out
+        };
+        let alone = run(None);
         let bits = |v: &[f32]| v.iter().map(|f| f.to_bits()).collect::<Vec<_>>();
         for threads in [2, 3] {
             let pool = rayon_core::ThreadPoolBuilder::new()
@@ -904,8 +912,9 @@ mod tests {
                 .build()
                 .unwrap();
             let spread = pool.install(|| run(Some(&pool)));
-            assert_eq!(bits(&spread), bits(alone), "{threads} threads");
+            assert_eq!(bits(&spread), bits(&alone), "{threads} threads");
         }
+        alone
     }
 
     /// Two 3×3 convolutions, 32 → 32 channels at 40×40 (100 tiles: the Winograd route), the
@@ -1001,12 +1010,7 @@ mod tests {
         assert_eq!(routes, [true, true], "both convolutions by Winograd");
         let want = winograd_block_reference(&weights, &x);
         let scale = want.iter().fold(1.0f64, |m, v| m.max(v.abs()));
-        let run = |team: Team<'_>| {
-            let mut out = vec![0.0; plan.output_len()];
-            plan.run_in_slices(&x, 1, &mut Workspace::new(), &mut out, (1, 1), team);
-            out
-        };
-        let alone = run(None);
+        let alone = run_on_teams(&plan, &x, 1);
         for (k, (&got, &w)) in alone.iter().zip(&want).enumerate() {
             // The project's tolerance rule (tests/reference/README.md).
             assert!(
@@ -1014,7 +1018,6 @@ mod tests {
                 "output {k}: {got} vs {w}"
             );
         }
-        same_bits_on_teams(&alone, run);
     }
 
     /// A squeeze-and-excitation-like tail large enough to be shared out over threads: the
@@ -1044,12 +1047,7 @@ mod tests {
             .collect();
         assert_eq!(lined_up, [true, true], "both ops are shared out");
         let input = SplitMix64::new(12).vec(c * h * w, -1.0, 1.0);
-        let run = |team: Team<'_>| {
-            let mut out = vec![0.0; plan.output_len()];
-            plan.run_in_slices(&input, 1, &mut Workspace::new(), &mut out, (1, 1), team);
-            out
-        };
-        let alone = run(None);
+        let alone = run_on_teams(&plan, &input, 1);
         let plane = h * w;
         for ch in 0..c {
             let xs = &input[ch * plane..][..plane];
@@ -1063,7 +1061,6 @@ mod tests {
                 );
             }
         }
-        same_bits_on_teams(&alone, run);
     }
 
     /// Max and average pooling (3×3 windows, stride 2, padding 1, as ResNet's stem pools) on
@@ -1101,12 +1098,7 @@ mod tests {
                 &bundle_of("pool", b, &y, &[c, h, w]),
                 Isa::detect().unwrap(),
             );
-            let run = |team: Team<'_>| {
-                let mut out = vec![0.0; plan.output_len()];
-                plan.run_in_slices(&input, 1, &mut Workspace::new(), &mut out, (1, 1), team);
-                out
-            };
-            let alone = run(None);
+            let alone = run_on_teams(&plan, &input, 1);
             for (k, &got) in alone.iter().enumerate() {
                 let (ch, oy, ox) = (k / (oh * ow), k / ow % oh, k % ow);
                 let taps: Vec<f64> = (0..9)
@@ -1128,7 +1120,6 @@ mod tests {
                     "{max} output {k}: {got} vs {want}"
                 );
             }
-            same_bits_on_teams(&alone, run);
         }
     }
 
@@ -1155,13 +1146,7 @@ mod tests {
         let plan = Plan::new(&bundle, Isa::detect().unwrap());
         for batch in [1, 2] {
             let input = rng.vec(batch * features, -1.0, 1.0);
-            let run = |team: Team<'_>| {
-                let mut out = vec![0.0; batch * plan.output_len()];
-                let sizes = (batch, batch);
-                plan.run_in_slices(&input, batch, &mut Workspace::new(), &mut out, sizes, team);
-                out
-            };
-            let alone = run(None);
+            let alone = run_on_teams(&plan, &input, batch);
             for s in 0..batch {
                 let xs = &input[s * features..][..features];
                 let h: Vec<f64> = (0..hidden)
@@ -1185,7 +1170,6 @@ mod tests {
                     );
                 }
             }
-            same_bits_on_teams(&alone, run);
         }
     }
 
