@@ -155,6 +155,8 @@ fn gemm_cases() -> Vec<GemmCase> {
             Src::Matrix,
         ),
         mat("square M=512 K=512 N=512", 512, 512, 512, Src::Matrix),
+        im2col("resnet18 3x3 M=128 K=1152 N=784", 128, conv(128, 28, 3, 1)),
+        im2col("resnet18 3x3 M=256 K=2304 N=196", 256, conv(256, 14, 3, 1)),
         mat("dense head N=1 M=1000 K=1280", 1000, 1280, 1, Src::MatrixT),
         mat(
             "dense head N=32 M=1000 K=1280",
