@@ -26,6 +26,7 @@ use std::time::{Duration, Instant};
 use rayon_core::ThreadPool;
 
 use super::kernels::activation::Activation;
+use super::kernels::aligned::AlignedBuf;
 use super::kernels::elementwise::Broadcast;
 use super::kernels::gemm::{BSource, Band, Epilogue, GemmScratch, PackedWeights, gemm_band};
 use super::kernels::pool::PoolGeom;
@@ -39,7 +40,11 @@ use crate::graph::BinaryKind;
 /// that describe its parts (`share`, `planes`, `Band::split`), one part on one thread.
 #[derive(Default)]
 pub struct Workspace {
-    buffers: Vec<Activations>,
+    /// The activations, each starting on a cache line. With the allocator's 16-byte
+    /// alignment, measured (2026-12-05, 2-core AVX-512 server, chains of 1×1 layers at batch
+    /// 1): each thread's half of a 28×28 layer took 78 µs beside the other thread against
+    /// 50 µs alone (aligned: 59), and 56×56 layers took 25% longer on one thread.
+    buffers: Vec<AlignedBuf>,
     /// One per part a step is spread over (one without a [`Team`]).
     parts: Vec<PartScratch>,
     dense: Vec<f32>,
@@ -79,7 +84,7 @@ impl Workspace {
         let seg = &plan.segments;
         if self.buffers.len() < seg.head_len.len() {
             self.buffers
-                .resize_with(seg.head_len.len(), Activations::default);
+                .resize_with(seg.head_len.len(), AlignedBuf::default);
         }
         for (buf, (&head, &tail)) in self
             .buffers
@@ -87,53 +92,10 @@ impl Workspace {
             .zip(seg.head_len.iter().zip(&seg.tail_len))
         {
             let need = (head * chunk).max(tail * batch);
-            buf.grow(need);
+            if buf.len() < need {
+                buf.set_len(need);
+            }
         }
-    }
-}
-
-/// A grow-only buffer of floats whose first float starts a cache line, so that rows whose
-/// length is a multiple of 16 floats (28×28 and 56×56 planes) start lines too: full-vector
-/// loads and stores never straddle two lines, and a step shared out by columns
-/// ([`COLUMN_STEP`]) gives each thread whole lines. With the allocator's 16-byte alignment,
-/// measured (2026-12-05, 2-core AVX-512 server, chains of 1×1 layers at batch 1): each
-/// thread's half of a 28×28 layer took 78 µs beside the other thread against 50 µs alone
-/// (now 59), and 56×56 layers took 20% longer on one thread.
-#[derive(Default)]
-struct Activations {
-    lines: Vec<Line>,
-    len: usize,
-}
-
-/// One cache line of floats.
-#[derive(Clone, Copy, Default)]
-#[repr(C, align(64))]
-struct Line([f32; 16]);
-
-impl Activations {
-    /// At least `len` floats (new ones zero), keeping the values already held.
-    fn grow(&mut self, len: usize) {
-        if len > self.len {
-            self.lines.resize(len.div_ceil(16), Line::default());
-            self.len = len;
-        }
-    }
-}
-
-impl std::ops::Deref for Activations {
-    type Target = [f32];
-
-    fn deref(&self) -> &[f32] {
-        // SAFETY: `lines` holds `len.div_ceil(16) * 16 >= len` initialised floats (a `Line` is
-        // 16 f32 with no padding), borrowed for as long as `self`.
-        unsafe { std::slice::from_raw_parts(self.lines.as_ptr().cast::<f32>(), self.len) }
-    }
-}
-
-impl std::ops::DerefMut for Activations {
-    fn deref_mut(&mut self) -> &mut [f32] {
-        // SAFETY: as `deref`, borrowed mutably for as long as `self`.
-        unsafe { std::slice::from_raw_parts_mut(self.lines.as_mut_ptr().cast::<f32>(), self.len) }
     }
 }
 
@@ -142,7 +104,7 @@ impl std::ops::DerefMut for Activations {
 struct PartScratch {
     gemm: GemmScratch,
     /// Transformed tiles of a Winograd convolution.
-    winograd: Vec<f32>,
+    winograd: AlignedBuf,
 }
 
 /// Target size, in floats, of a workspace's buffers for the head of a pass (4 MiB, the order
@@ -323,7 +285,7 @@ impl Plan {
         }
     }
 
-    fn value<'a>(&self, buffers: &'a [Activations], v: usize, samples: Samples) -> &'a [f32] {
+    fn value<'a>(&self, buffers: &'a [AlignedBuf], v: usize, samples: Samples) -> &'a [f32] {
         let at = self.offset(v, samples);
         &buffers[self.value_buffer[v]][at..][..self.value_len[v] * samples.count]
     }
@@ -428,7 +390,7 @@ impl Plan {
         &self,
         inputs: &[usize],
         (outer, blocks): (usize, &[usize]),
-        buffers: &[Activations],
+        buffers: &[AlignedBuf],
         samples: Samples,
         out: &mut [f32],
     ) {
@@ -638,7 +600,7 @@ const SPREAD_MIN_MULTIPLY_ADDS: usize = 1 << 18;
 
 /// Column parts start at multiples of this: whole vectors for every instruction set's
 /// microkernel, and whole cache lines (16 floats) of every row whose length is a multiple of
-/// 16, so that no line is written by two threads ([`Activations`] starts rows there). With 8,
+/// 16, so that no line is written by two threads (the workspace's buffers start on one). With 8,
 /// EfficientNet-B0's 28×28 plane split at column 392 and its 1×1 layers ran no faster on two
 /// threads than on one.
 const COLUMN_STEP: usize = 16;

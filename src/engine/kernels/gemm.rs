@@ -30,11 +30,11 @@ use std::marker::PhantomData;
 use std::ops::Range;
 
 use super::activation::Activation;
+use super::aligned::AlignedBuf;
 use super::isa::Isa;
 use super::simd::{Machine, Scalar, Simd};
 use super::vmath;
 use kernel::Out;
-use pack::AlignedBuf;
 
 /// Microkernel shapes per instruction set: `MR` weight rows by `NV` vectors of columns.
 ///

@@ -4,6 +4,7 @@
 //! down explicitly; kernels never probe the CPU themselves.
 
 pub mod activation;
+pub mod aligned;
 mod copy;
 pub mod depthwise;
 pub mod elementwise;

@@ -28,6 +28,7 @@
 
 use std::fmt;
 
+use super::aligned::AlignedBuf;
 use super::gemm::{BSource, Band, ConvGeom, Epilogue, GemmScratch, PackedWeights, gemm};
 use super::isa::Isa;
 use super::simd::Machine;
@@ -41,6 +42,9 @@ const PATCH: usize = 6;
 const XI: usize = PATCH * PATCH;
 /// Tiles transformed together, one per lane.
 const LANES: usize = 8;
+/// Blocks hold a multiple of this many tiles: whole cache lines, so that each position's
+/// GEMM reads its B rows from line starts (the scratch starts on one).
+const BLOCK_STEP: usize = 16;
 /// Floats of `V` and `M` one block of tiles may hold (1 MiB: the transformed block and the
 /// GEMM's working set share a core's L2 of 1–2 MiB on current x86 server parts).
 const BLOCK_FLOATS: usize = 256 * 1024;
@@ -138,7 +142,7 @@ pub fn conv_band(
     input: &[f32],
     mut c: Band<'_>,
     epi: &Epilogue<'_>,
-    (buf, scratch): (&mut Vec<f32>, &mut GemmScratch),
+    (buf, scratch): (&mut AlignedBuf, &mut GemmScratch),
 ) {
     let (in_c, out_c) = (w.in_c, w.out_c);
     let (out_h, out_w) = (geom.out_h, geom.out_w);
@@ -157,15 +161,11 @@ pub fn conv_band(
     let tiles_w = out_w.div_ceil(TILE);
     let first_tile = cols.start / tile_row * tiles_w;
     let tiles = cols.end.div_ceil(tile_row) * tiles_w - first_tile;
-    let block = (BLOCK_FLOATS / (XI * (in_c + out_c)) / LANES * LANES)
-        .max(LANES)
-        .min(tiles.next_multiple_of(LANES));
+    let block = (BLOCK_FLOATS / (XI * (in_c + out_c)) / BLOCK_STEP * BLOCK_STEP)
+        .max(BLOCK_STEP)
+        .min(tiles.next_multiple_of(BLOCK_STEP));
     let (v_len, m_len) = (XI * in_c * block, XI * out_c * block);
-    if buf.len() < v_len + m_len {
-        buf.resize(v_len + m_len, 0.0);
-    }
-    let (v, m) = buf.split_at_mut(v_len);
-    let m = &mut m[..m_len];
+    let (v, m) = buf.get(v_len + m_len).split_at_mut(v_len);
     let no_epilogue = Epilogue::default();
     let mut b0 = 0;
     while b0 < tiles {

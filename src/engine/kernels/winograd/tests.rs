@@ -106,7 +106,7 @@ impl Data {
         };
         let step = rows_per_band.saturating_mul(TILE * g.out_w).min(n);
         let ranges: Vec<_> = (0..n).step_by(step).map(|s| s..(s + step).min(n)).collect();
-        let mut buf = Vec::new();
+        let mut buf = AlignedBuf::default();
         let mut scratch = GemmScratch::new();
         for band in Band::split(&mut out, self.out_c, n, &ranges) {
             conv_band(&w, g, &self.x, band, &epi, (&mut buf, &mut scratch));
@@ -192,6 +192,6 @@ fn a_band_must_cover_whole_rows_of_tiles() {
         &d.x,
         band,
         &Epilogue::default(),
-        (&mut Vec::new(), &mut GemmScratch::new()),
+        (&mut AlignedBuf::default(), &mut GemmScratch::new()),
     );
 }
