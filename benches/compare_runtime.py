@@ -7,17 +7,20 @@ CPU provider) on the same ONNX files, as one run. The library is a speed referen
 2. For batch 1 and 32 on 1 and 2 threads, `convoy bench --local` times the engine, and the
    runtime library is timed in this process the way ../shared/bench/runtime_compare.py does it
    (random normal input, seed 0; intra-op threads = threads, inter-op threads = 1; warm-up, then
-   the median of timed runs over --duration seconds). This is done --rounds times, convoy and the
-   library interleaved per net and thread count; each cell reports the median over the rounds.
+   the median of timed runs over --duration seconds). PyTorch eager is timed too on the nets
+   ../shared/bench/torch_baseline.py defines (lenet-28, resnet20-32, mbv2-224), with its
+   `time_batches`; the ratio column divides by the faster of the two references, as the shared
+   measure does. This is done --rounds times, convoy and the references interleaved per net and
+   thread count; each cell reports the median over the rounds.
 3. From convoy's runs: batch-1 thread scaling (also for the library), the fraction of the
    measured one-core FMA peak at batch 32 on one thread, and load time (best over the runs).
 4. Peak resident memory at batch 32 on 2 threads for mbv2-224 and resnet18-224, each side in a
    process of its own: `convoy bench --local --batches 32` and this script re-invoked with
    --rss-of-runtime.
 
-Prints markdown tables, and last `worst convoy / runtime lib: R (net, batch, threads)`.
+Prints markdown tables, and last `worst convoy / faster reference: R (net, batch, threads)`.
 Does not build: run `cargo build --release` first. Needs the venv of ../shared/bench/README.md
-(onnx, onnxruntime, numpy); not part of CI.
+(onnx, onnxruntime, numpy, torch); not part of CI.
 
 Usage: .venv-ref/bin/python benches/compare_runtime.py [--duration S] [--rounds R]
                                                        [--onnx FILE.onnx ...] [--skip-memory]
@@ -27,6 +30,7 @@ import argparse, datetime, glob, json, os, platform, resource, statistics, subpr
 import numpy as np, onnxruntime as ort
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+SHARED_BENCH = os.path.join(ROOT, "..", "shared", "bench")
 CONVOY = os.path.join(ROOT, "target", "release", "convoy")
 BUNDLES = os.path.join(ROOT, "target", "runtime-cmp")
 NET_DIRS = (os.path.join(ROOT, "target", "ref-onnx"), os.path.join(ROOT, "target", "speed-nets"))
@@ -71,6 +75,25 @@ def runtime_images_per_s(path, x, threads, budget):
     return len(x) / statistics.median(times)
 
 
+def torch_images_per_s(name, batch, threads, budget):
+    """PyTorch eager on the shared baseline's definition of `name` (None where it has none, or
+    without torch): fixed seed, random input, the baseline's own timing loop."""
+    sys.path.insert(0, SHARED_BENCH)
+    try:
+        import torch, torch_baseline as tb
+    except ImportError:
+        return None
+    finally:
+        sys.path.remove(SHARED_BENCH)
+    if name not in tb.NETS:
+        return None
+    torch.set_num_threads(threads)
+    torch.manual_seed(7)
+    ctor, shape = tb.NETS[name]
+    model = ctor().eval()
+    return batch / tb.time_batches(model, torch.randn(batch, *shape), budget_s=budget)
+
+
 def print_runtime_rss(path, batch, threads):
     """The --rss-of-runtime mode: run one batch a few times, print this process's peak RSS (MiB)."""
     session = runtime_session(path, int(threads))
@@ -106,8 +129,9 @@ def import_nets(paths):
 
 def measure(nets, rounds, duration):
     """Per (net, batch, threads), lists over the rounds: convoy's result rows (with the run's
-    load_ms, fma_peak_gflops and isa added) and the runtime library's images/s."""
-    convoy, runtime = {}, {}
+    load_ms, fma_peak_gflops and isa added), the runtime library's images/s, and PyTorch's
+    (nets of the shared baseline only)."""
+    convoy, runtime, torch_ips = {}, {}, {}
     for round_no in range(1, rounds + 1):
         for net in (n for n in nets if not n["refused"]):
             print(f"round {round_no}/{rounds}: {net['name']}", file=sys.stderr)
@@ -121,28 +145,37 @@ def measure(nets, rounds, duration):
                     x = random_batch(net["shape"], batch)
                     runtime.setdefault((net["name"], batch, threads), []).append(
                         runtime_images_per_s(net["path"], x, threads, duration))
-    return convoy, runtime
+                    eager = torch_images_per_s(net["name"], batch, threads, duration)
+                    if eager is not None:
+                        torch_ips.setdefault((net["name"], batch, threads), []).append(eager)
+    return convoy, runtime, torch_ips
 
 
 def median_field(rows, field):
     return statistics.median(r[field] for r in rows)
 
 
-def speed_table(nets, convoy, runtime):
-    """Median images/s per cell, and the worst ratio as (ratio, 'net, batch, threads')."""
-    print("| net | batch, threads | convoy | runtime lib | convoy / runtime lib |")
-    print("|---|---|---|---|---|")
+def speed_table(nets, convoy, runtime, torch_ips):
+    """Median images/s per cell, and the worst ratio to the faster reference as (ratio, 'net,
+    batch, threads')."""
+    print("| net | batch, threads | convoy | runtime lib | PyTorch | "
+          "convoy / faster reference |")
+    print("|---|---|---|---|---|---|")
     worst = None
     for net in nets:
         name = net["name"]
         if net["refused"]:
-            print(f"| {name} | import refused: {net['refused']} | | | |")
+            print(f"| {name} | import refused: {net['refused']} | | | | |")
             continue
         for batch, threads in CELLS:
-            ours = median_field(convoy[(name, batch, threads)], "images_per_s")
-            theirs = statistics.median(runtime[(name, batch, threads)])
-            ratio = ours / theirs
-            print(f"| {name} | {batch}, {threads} | {ours:,.0f} | {theirs:,.0f} | {ratio:.2f} |")
+            key = (name, batch, threads)
+            ours = median_field(convoy[key], "images_per_s")
+            theirs = statistics.median(runtime[key])
+            eager = statistics.median(torch_ips[key]) if key in torch_ips else None
+            ratio = ours / max(theirs, eager or 0)
+            eager_cell = f"{eager:,.0f}" if eager is not None else "—"
+            print(f"| {name} | {batch}, {threads} | {ours:,.0f} | {theirs:,.0f} | {eager_cell} | "
+                  f"{ratio:.2f} |")
             if worst is None or ratio < worst[0]:
                 worst = (ratio, f"{name}, batch {batch}, {threads} thread{'s' * (threads > 1)}")
     return worst
@@ -234,12 +267,12 @@ def main():
     paths = [os.path.abspath(p) for p in a.onnx] if a.onnx else \
         sorted(p for d in NET_DIRS for p in glob.glob(os.path.join(d, "*.onnx")))
     nets = import_nets(paths)
-    convoy, runtime = measure(nets, a.rounds, a.duration)
+    convoy, runtime, torch_ips = measure(nets, a.rounds, a.duration)
     measured = [n["name"] for n in nets if not n["refused"]]
     ceiling = second_core_share(nets, a.duration)
 
     print(header(convoy) + f"; medians of {a.rounds} round(s), {a.duration:g} s per measure\n")
-    worst = speed_table(nets, convoy, runtime)
+    worst = speed_table(nets, convoy, runtime, torch_ips)
     print()
     if measured:
         scaling_table(measured, convoy, runtime, ceiling)
@@ -249,9 +282,9 @@ def main():
     if not a.skip_memory:
         memory_table(nets)
     if worst:
-        print(f"worst convoy / runtime lib: {worst[0]:.2f} ({worst[1]})")
+        print(f"worst convoy / faster reference: {worst[0]:.2f} ({worst[1]})")
     else:
-        print("worst convoy / runtime lib: none measured")
+        print("worst convoy / faster reference: none measured")
     return 0
 
 
