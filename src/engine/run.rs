@@ -574,11 +574,14 @@ fn run_conv(
                 });
             } else {
                 // Few groups (most often one): split each one's output columns, or its rows
-                // where a part's columns would fill few register tiles (small planes).
-                let by_rows = parts > 1 && n < ROWS_BELOW_COLUMNS * parts;
+                // where a part's columns would fill few register tiles (small planes) or
+                // share a cache line with the next part's in every row.
                 let cols = share(n, parts, COLUMN_STEP);
                 for (gi, weights) in groups.iter().enumerate() {
                     let o = &mut out[gi * ocg * n..(gi + 1) * ocg * n];
+                    let by_rows = parts > 1
+                        && ocg.div_ceil(weights.panel_rows()) >= parts
+                        && (n < ROWS_BELOW_COLUMNS * parts || !n.is_multiple_of(COLUMN_STEP));
                     let bands = if by_rows {
                         let rows = share(ocg, parts, weights.panel_rows());
                         Band::split_rows(o, ocg, n, 0..n, &rows)
@@ -606,10 +609,13 @@ const SPREAD_MIN_MULTIPLY_ADDS: usize = 1 << 18;
 const COLUMN_STEP: usize = 16;
 
 /// A GEMM is shared out by output rows rather than columns when its parts would get fewer
-/// columns each than this. A 7×7 plane (49 columns) cut in two halves of 24 and 25 columns
-/// fills two half-empty AVX-512 tiles per half; cut by rows, every tile is the one a single
-/// thread would run. Measured (2026-12-05, 2-core AVX-512 server, batch 1 on two threads):
-/// EfficientNet-B0's 1×1 layers at 7×7 took 1.3–1.9 ms instead of 2.5.
+/// columns each than this, or when its rows are not whole cache lines (then every row would
+/// have a line written by two threads). A 7×7 plane (49 columns) cut in two halves of 24 and 25
+/// columns fills two half-empty AVX-512 tiles per half; cut by rows, every tile is the one a
+/// single thread would run. Measured (2026-12-05, 2-core AVX-512 server, batch 1 on two
+/// threads): EfficientNet-B0's 1×1 layers at 7×7 took 1.3–1.9 ms instead of 2.5; a chain of
+/// 1×1 layers at 14×14 (196 columns) ran 1.39 times as fast as on one thread by rows, 1.14
+/// by columns.
 const ROWS_BELOW_COLUMNS: usize = 64;
 
 /// Elementwise steps of fewer output floats per sample run on one thread (a squeeze-and-
