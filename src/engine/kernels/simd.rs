@@ -263,6 +263,19 @@ impl Machine {
             Machine::Neon(_) => Isa::Neon,
         }
     }
+
+    /// This set's [`Simd::FAST_MASKED_LOAD`], for choices made before any kernel runs.
+    pub(crate) fn fast_masked_load(self) -> bool {
+        match self {
+            Machine::Scalar(_) => Scalar::FAST_MASKED_LOAD,
+            #[cfg(target_arch = "x86_64")]
+            Machine::Avx2(_) => Avx2::FAST_MASKED_LOAD,
+            #[cfg(target_arch = "x86_64")]
+            Machine::Avx512(_) => Avx512::FAST_MASKED_LOAD,
+            #[cfg(target_arch = "aarch64")]
+            Machine::Neon(_) => Neon::FAST_MASKED_LOAD,
+        }
+    }
 }
 
 #[cfg(test)]

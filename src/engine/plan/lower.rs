@@ -8,6 +8,7 @@ use crate::engine::kernels::gemm::{ConvGeom, PackedWeights};
 use crate::engine::kernels::isa::Isa;
 use crate::engine::kernels::layout::{merge_axes, row_major_strides};
 use crate::engine::kernels::pool::PoolGeom;
+use crate::engine::kernels::simd::Machine;
 use crate::engine::kernels::winograd::{self, WinogradWeights};
 use crate::graph::BinaryKind;
 
@@ -138,9 +139,12 @@ fn conv(kind: IrKind<'_>, isa: Isa, in_shape: &[usize], out_shape: &[usize]) -> 
 /// with tiles enough to reuse each transformed weight.
 fn winograd_pays(isa: Isa, geom: &ConvGeom, groups: usize, out_c: usize) -> bool {
     let tiles = geom.out_h.div_ceil(winograd::TILE) * geom.out_w.div_ceil(winograd::TILE);
-    let min_tiles = match isa {
-        Isa::Avx512 => WINOGRAD_MIN_TILES_MASKED,
-        _ => WINOGRAD_MIN_TILES,
+    // Where the direct GEMM route reads its input through masked loads, it runs more layers
+    // faster than Winograd does.
+    let min_tiles = if Machine::new_or_scalar(isa).fast_masked_load() {
+        WINOGRAD_MIN_TILES_MASKED
+    } else {
+        WINOGRAD_MIN_TILES
     };
     winograd::fits(geom, groups)
         && geom.in_c >= WINOGRAD_MIN_CHANNELS
