@@ -361,7 +361,8 @@ impl Plan {
                 }
             }
             StepKind::MaxPool(_) | StepKind::AvgPool { .. } | StepKind::GlobalAvgPool { .. } => {
-                pool_step(&step.kind, input, out, (scratches, team));
+                let machine = Machine::new_or_scalar(self.isa);
+                pool_step(machine, &step.kind, input, out, (scratches, team));
             }
             StepKind::Concat { outer, blocks } => {
                 self.concat(&step.inputs, (*outer, blocks), buffers, samples, out);
@@ -688,6 +689,7 @@ fn by_channels(
 /// A pooling step over the samples of `input` into `out`, shared out by channels
 /// ([`by_channels`]).
 fn pool_step(
+    machine: Machine,
     kind: &StepKind,
     input: &[f32],
     out: &mut [f32],
@@ -697,7 +699,7 @@ fn pool_step(
     match kind {
         StepKind::MaxPool(g) => {
             by_channels(window_sizes(g), input, out, (scratches, team), |r, x, o| {
-                pool::max_pool(&PoolGeom { c: r.len(), ..*g }, x, o);
+                pool::max_pool(machine, &PoolGeom { c: r.len(), ..*g }, x, o);
             });
         }
         StepKind::AvgPool {

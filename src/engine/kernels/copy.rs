@@ -1,8 +1,11 @@
-//! Short copies and fills for the packing and depthwise paths.
+//! Short copies and fills for the packing and depthwise paths, and the column-pair loads of
+//! the stride-2 ones.
 //!
 //! The runs these kernels move are often shorter than 64 floats, where a `memcpy`/`memset`
 //! call costs more than the work; these helpers use fixed-size chunk moves the compiler emits
 //! inline (and widens to the vector registers of the calling instruction-set wrapper).
+
+use super::simd::Simd;
 
 /// Copies a short run with fixed-size chunk moves the compiler emits inline (the last chunk
 /// overlapping the previous one): im2col runs are often shorter than 64 floats, where a
@@ -109,4 +112,24 @@ pub(crate) fn zero_short(dst: &mut [f32]) {
             _ => {}
         }
     }
+}
+
+/// The left and the right values of the column pairs in `pairs` (at most `LANES` pairs),
+/// lanes past them unspecified.
+#[inline(always)]
+pub(crate) fn load_pairs<S: Simd>(s: S, pairs: &[f32]) -> (S::V, S::V) {
+    let lanes = S::LANES;
+    debug_assert!(pairs.len() <= 2 * lanes && pairs.len().is_multiple_of(2));
+    // SAFETY: every load reads only floats of `pairs`.
+    let (lo, hi) = unsafe {
+        let p = pairs.as_ptr();
+        if pairs.len() == 2 * lanes {
+            (s.load(p), s.load(p.add(lanes)))
+        } else if pairs.len() > lanes {
+            (s.load(p), s.load_partial(p.add(lanes), pairs.len() - lanes))
+        } else {
+            (s.load_partial(p, pairs.len()), s.zero())
+        }
+    };
+    s.unzip(lo, hi)
 }

@@ -5,6 +5,9 @@
 
 use std::ops::Range;
 
+use super::copy::load_pairs;
+use super::simd::{Machine, Simd};
+
 /// Checked geometry of a pooling window over one sample.
 #[derive(Clone, Copy, Debug)]
 pub struct PoolGeom {
@@ -20,8 +23,9 @@ pub struct PoolGeom {
     pub padding: [usize; 4],
 }
 
-/// Max pooling; padding never wins (it counts as −∞).
-pub fn max_pool(g: &PoolGeom, input: &[f32], output: &mut [f32]) {
+/// Max pooling; padding never wins (it counts as −∞). 2×2 windows are vectorised on the
+/// instruction set `machine` proves.
+pub(crate) fn max_pool(machine: Machine, g: &PoolGeom, input: &[f32], output: &mut [f32]) {
     if g.kernel == [2, 2]
         && g.stride == [2, 2]
         && g.dilation == [1, 1]
@@ -29,9 +33,38 @@ pub fn max_pool(g: &PoolGeom, input: &[f32], output: &mut [f32]) {
         && 2 * g.out_h <= g.in_h
         && 2 * g.out_w <= g.in_w
     {
-        return max_pool_2x2_inside(g, input, output);
+        return match machine {
+            Machine::Scalar(s) => max_pool_2x2_inside(s, g, input, output),
+            #[cfg(target_arch = "x86_64")]
+            // SAFETY: the token proves the CPU runs the wrapper's target features.
+            Machine::Avx2(s) => unsafe { max_pool_2x2_avx2(s, g, input, output) },
+            #[cfg(target_arch = "x86_64")]
+            // SAFETY: as above.
+            Machine::Avx512(s) => unsafe { max_pool_2x2_avx512(s, g, input, output) },
+            #[cfg(target_arch = "aarch64")]
+            // SAFETY: as above.
+            Machine::Neon(s) => unsafe { max_pool_2x2_neon(s, g, input, output) },
+        };
     }
     max_pool_by_rows(g, input, output);
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2,fma")]
+unsafe fn max_pool_2x2_avx2(s: super::simd::Avx2, g: &PoolGeom, x: &[f32], y: &mut [f32]) {
+    max_pool_2x2_inside(s, g, x, y);
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx512f,avx2,fma")]
+unsafe fn max_pool_2x2_avx512(s: super::simd::Avx512, g: &PoolGeom, x: &[f32], y: &mut [f32]) {
+    max_pool_2x2_inside(s, g, x, y);
+}
+
+#[cfg(target_arch = "aarch64")]
+#[target_feature(enable = "neon")]
+unsafe fn max_pool_2x2_neon(s: super::simd::Neon, g: &PoolGeom, x: &[f32], y: &mut [f32]) {
+    max_pool_2x2_inside(s, g, x, y);
 }
 
 /// Any window, stride, dilation and padding, a whole output row at a time: for each tap
@@ -161,10 +194,13 @@ fn keep_max(best: f32, v: f32) -> f32 {
 }
 
 /// 2×2 windows, stride 2, no padding, every window inside the input (the pooling of most small
-/// CNNs): the general loop's bounds checks and index arithmetic cost more than the comparisons.
-/// Same taps in the same order as [`max_pool`], so the same bits.
-fn max_pool_2x2_inside(g: &PoolGeom, input: &[f32], output: &mut [f32]) {
-    let (w, ow) = (g.in_w, g.out_w);
+/// CNNs), a vector of outputs at a time: the two input rows' column pairs unzipped into left
+/// and right values, then folded in the general loop's tap order (top left, top right, bottom
+/// left, bottom right), so the same bits as [`max_pool_general`]. A row's last outputs take
+/// partial vectors (LeNet's rows are 14 and 7 outputs long).
+#[inline(always)]
+fn max_pool_2x2_inside<S: Simd>(s: S, g: &PoolGeom, input: &[f32], output: &mut [f32]) {
+    let (w, ow, lanes) = (g.in_w, g.out_w, S::LANES);
     for c in 0..g.c {
         let plane = &input[c * g.in_h * w..][..g.in_h * w];
         let out = &mut output[c * g.out_h * ow..][..g.out_h * ow];
@@ -172,15 +208,27 @@ fn max_pool_2x2_inside(g: &PoolGeom, input: &[f32], output: &mut [f32]) {
             let top = &plane[2 * oy * w..][..2 * ow];
             let bottom = &plane[(2 * oy + 1) * w..][..2 * ow];
             for ((o, t), b) in out_row
-                .iter_mut()
-                .zip(top.chunks_exact(2))
-                .zip(bottom.chunks_exact(2))
+                .chunks_mut(lanes)
+                .zip(top.chunks(2 * lanes))
+                .zip(bottom.chunks(2 * lanes))
             {
-                let best = keep_max(keep_max(f32::NEG_INFINITY, t[0]), t[1]);
-                *o = keep_max(keep_max(best, b[0]), b[1]);
+                let (t0, t1) = load_pairs(s, t);
+                let (b0, b1) = load_pairs(s, b);
+                let best = keep_max_v(s, keep_max_v(s, keep_max_v(s, t0, t1), b0), b1);
+                // SAFETY: `o` holds `o.len() <= LANES` writable floats.
+                unsafe { s.store_partial(o.as_mut_ptr(), best, o.len()) };
             }
         }
     }
+}
+
+/// [`keep_max`] on vectors: per lane, `v` if it is larger than `best` or NaN, else `best`.
+#[inline(always)]
+fn keep_max_v<S: Simd>(s: S, best: S::V, v: S::V) -> S::V {
+    let larger = s.select_gt(v, best, v, best);
+    // NaN is the one value that neither exceeds −∞ nor falls below +∞.
+    let (low, high) = (s.splat(f32::NEG_INFINITY), s.splat(f32::INFINITY));
+    s.select_gt(v, low, larger, s.select_gt(high, v, larger, v))
 }
 
 /// Average pooling. With `count_include_pad` the divisor counts padding cells inside the padded
@@ -319,6 +367,7 @@ pub fn channel_affine(
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::engine::kernels::isa::Isa;
 
     fn geom(h: usize, w: usize, k: usize, s: usize, p: usize, oh: usize, ow: usize) -> PoolGeom {
         PoolGeom {
@@ -370,8 +419,15 @@ mod tests {
     fn max_pool_2x2() {
         let x: Vec<f32> = (0..16).map(|v| v as f32).collect();
         let mut y = vec![0.0; 4];
-        max_pool(&geom(4, 4, 2, 2, 0, 2, 2), &x, &mut y);
-        assert_eq!(y, [5.0, 7.0, 13.0, 15.0]);
+        for isa in Isa::supported() {
+            max_pool(
+                Machine::new_or_scalar(isa),
+                &geom(4, 4, 2, 2, 0, 2, 2),
+                &x,
+                &mut y,
+            );
+            assert_eq!(y, [5.0, 7.0, 13.0, 15.0], "{isa}");
+        }
     }
 
     // 3x3 average with padding 1 on a 2x2 input of ones: PyTorch's documented divisor rule
@@ -386,28 +442,43 @@ mod tests {
         assert!(y.iter().all(|&v| (v - 1.0).abs() < 1e-7));
     }
 
-    // The 2×2 fast path gives the general loop's bits, NaN and signed zeros included, on odd
-    // sizes too (the last row and column are left out, as floor mode does).
+    // The 2×2 fast path gives the general loop's bits on every instruction set, NaN (with
+    // distinct payloads) and signed zeros included, on odd sizes too (the last row and column
+    // are left out, as floor mode does) and on rows of whole, partial and several vectors.
     #[test]
     fn max_pool_2x2_fast_path_matches_the_general_loop() {
-        let (c, h, w) = (3, 7, 9);
-        let specials = [f32::NAN, -0.0, 0.0, f32::NEG_INFINITY, f32::INFINITY];
-        let x: Vec<f32> = (0..c * h * w)
-            .map(|i| match i % 11 {
-                0..=4 => specials[i % 11],
-                _ => ((i * 37) % 17) as f32 - 8.0,
-            })
-            .collect();
-        let g = PoolGeom {
-            c,
-            ..geom(h, w, 2, 2, 0, 3, 4)
-        };
-        let (mut fast, mut general) = (vec![0.0; c * 12], vec![0.0; c * 12]);
-        max_pool(&g, &x, &mut fast);
-        max_pool_general(&g, &x, &mut general);
+        let specials = [
+            f32::NAN,
+            -0.0,
+            0.0,
+            f32::NEG_INFINITY,
+            f32::INFINITY,
+            f32::from_bits(0x7fc0_0001),
+            -f32::NAN,
+        ];
         let bits = |v: &[f32]| v.iter().map(|f| f.to_bits()).collect::<Vec<_>>();
-        assert_eq!(bits(&fast), bits(&general));
-        assert!(fast.iter().any(|v| v.is_nan()));
+        for (c, h, w) in [(3, 7, 9), (2, 28, 28), (2, 5, 32), (1, 4, 67)] {
+            let x: Vec<f32> = (0..c * h * w)
+                .map(|i| match (i * 7) % 23 {
+                    k @ 0..=6 => specials[k],
+                    _ => ((i * 37) % 17) as f32 - 8.0,
+                })
+                .collect();
+            let g = PoolGeom {
+                c,
+                ..geom(h, w, 2, 2, 0, h / 2, w / 2)
+            };
+            let len = c * (h / 2) * (w / 2);
+            let mut general = vec![0.0; len];
+            max_pool_general(&g, &x, &mut general);
+            assert!(general.iter().any(|v| v.is_nan()));
+            assert!(general.iter().any(|v| v.to_bits() == (-0.0f32).to_bits()));
+            for isa in Isa::supported() {
+                let mut fast = vec![0.0; len];
+                max_pool(Machine::new_or_scalar(isa), &g, &x, &mut fast);
+                assert_eq!(bits(&fast), bits(&general), "{isa} {c}x{h}x{w}");
+            }
+        }
     }
 
     // The row-at-a-time path gives the general loop's bits for windows, strides, dilations and

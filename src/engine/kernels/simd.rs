@@ -71,11 +71,18 @@ pub(crate) trait Simd: Copy {
         // SAFETY: `lanes` holds 16 >= LANES floats (every set has at most 16 lanes).
         unsafe { self.load(lanes.as_ptr()) }
     }
+    /// The even and the odd lanes of the `2*LANES` values `lo` then `hi`:
+    /// `(lo0, lo2, .., hi0, hi2, ..)` and `(lo1, lo3, .., hi1, hi3, ..)`.
+    fn unzip(self, lo: Self::V, hi: Self::V) -> (Self::V, Self::V);
     /// Loads `p[0], p[2], .., p[2*(LANES-1)]`.
     ///
     /// # Safety
     /// `p` must be valid for reading `2*LANES` floats (one more than the last one used).
-    unsafe fn load_even(self, p: *const f32) -> Self::V;
+    #[inline(always)]
+    unsafe fn load_even(self, p: *const f32) -> Self::V {
+        // SAFETY: the caller's 2*LANES readable floats, in two loads.
+        unsafe { self.unzip(self.load(p), self.load(p.add(Self::LANES))).0 }
+    }
     /// Lane `i` of the result is lane `i + by` of `v` for `i + by < LANES`; the top `by`
     /// lanes are unspecified. `by < LANES`.
     fn shift_down(self, v: Self::V, by: usize) -> Self::V;
@@ -150,9 +157,8 @@ impl Simd for Scalar {
         }
     }
     #[inline(always)]
-    unsafe fn load_even(self, p: *const f32) -> f32 {
-        // SAFETY: the caller guarantees `p` is readable for two floats; one is used.
-        unsafe { p.read_unaligned() }
+    fn unzip(self, lo: f32, hi: f32) -> (f32, f32) {
+        (lo, hi)
     }
     #[inline(always)]
     fn shift_down(self, v: f32, _by: usize) -> f32 {
@@ -357,6 +363,13 @@ mod tests {
             s.store(out.as_mut_ptr(), s.load_even(xs.as_ptr().add(1)));
             for i in 0..l {
                 assert_eq!(out[i].to_bits(), xs[1 + 2 * i].to_bits());
+            }
+            let (even, odd) = s.unzip(a, s.load(xs.as_ptr().add(l)));
+            for (half, v) in [even, odd].into_iter().enumerate() {
+                s.store(out.as_mut_ptr(), v);
+                for i in 0..l {
+                    assert_eq!(out[i].to_bits(), xs[2 * i + half].to_bits(), "unzip {half}");
+                }
             }
             for by in 0..l {
                 s.store(out.as_mut_ptr(), s.shift_down(a, by));

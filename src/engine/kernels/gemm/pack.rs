@@ -25,6 +25,9 @@ pub(super) fn pack_a(a: &[f32], m: usize, k: usize, mr: usize, pad: usize) -> Ve
     out
 }
 
+/// Rows of packed B a transposed source fills at a time.
+const T_BLOCK: usize = 32;
+
 /// Writes `dst[kk*width + j] = B[kk][n0 + j]` for `kk < k`, `j < cols`, and zero for
 /// `cols <= j < width`. `dst.len() == k * width`.
 #[inline(always)] // compiled inside each instruction set's wrapper, for its wider moves
@@ -52,10 +55,16 @@ pub(super) fn pack_b(
                     row[cols..].fill(0.0);
                 }
             }
-            for j in 0..cols {
-                let src = &data[(n0 + j) * ld..][..k];
-                for (row, &v) in dst.chunks_exact_mut(width).zip(src) {
-                    row[j] = v;
+            // A transpose, in blocks of `T_BLOCK` rows of `dst` (a few KiB, in L1 as every
+            // column visits them): column by column down all `k` rows would touch every
+            // line of `dst` once per column.
+            for (block, rows) in dst.chunks_mut(T_BLOCK * width).enumerate() {
+                let k0 = block * T_BLOCK;
+                for j in 0..cols {
+                    let src = &data[(n0 + j) * ld + k0..][..rows.len() / width];
+                    for (row, &v) in rows.chunks_exact_mut(width).zip(src) {
+                        row[j] = v;
+                    }
                 }
             }
         }

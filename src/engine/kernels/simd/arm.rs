@@ -68,9 +68,8 @@ impl Simd for Neon {
         unsafe { std::ptr::copy_nonoverlapping(buf.as_ptr(), p, n) };
     }
     #[inline(always)]
-    unsafe fn load_even(self, p: *const f32) -> float32x4_t {
-        // `ld2` de-interleaves 8 floats; field 0 holds the even ones.
-        cpu!(vld2q_f32(p).0)
+    fn unzip(self, lo: float32x4_t, hi: float32x4_t) -> (float32x4_t, float32x4_t) {
+        cpu!((vuzp1q_f32(lo, hi), vuzp2q_f32(lo, hi)))
     }
     #[inline(always)]
     fn shift_down(self, v: float32x4_t, by: usize) -> float32x4_t {

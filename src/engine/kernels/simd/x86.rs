@@ -84,16 +84,17 @@ impl Simd for Avx2 {
         cpu!(_mm256_maskstore_ps(p, avx2_mask(n), v))
     }
     #[inline(always)]
-    unsafe fn load_even(self, p: *const f32) -> __m256 {
+    fn unzip(self, lo: __m256, hi: __m256) -> (__m256, __m256) {
         cpu!({
-            let lo = _mm256_loadu_ps(p);
-            let hi = _mm256_loadu_ps(p.add(8));
             // Per 128-bit half: [lo0 lo2 hi0 hi2 | lo4 lo6 hi4 hi6]; then reorder the
-            // 64-bit pairs (0, 2, 1, 3) to get lo0 lo2 lo4 lo6 hi0 hi2 hi4 hi6.
-            let mixed = _mm256_shuffle_ps::<0b10_00_10_00>(lo, hi);
-            _mm256_castpd_ps(_mm256_permute4x64_pd::<0b11_01_10_00>(_mm256_castps_pd(
-                mixed,
-            )))
+            // 64-bit pairs (0, 2, 1, 3) to get lo0 lo2 lo4 lo6 hi0 hi2 hi4 hi6. The odd
+            // lanes likewise.
+            let even = _mm256_castps_pd(_mm256_shuffle_ps::<0b10_00_10_00>(lo, hi));
+            let odd = _mm256_castps_pd(_mm256_shuffle_ps::<0b11_01_11_01>(lo, hi));
+            (
+                _mm256_castpd_ps(_mm256_permute4x64_pd::<0b11_01_10_00>(even)),
+                _mm256_castpd_ps(_mm256_permute4x64_pd::<0b11_01_10_00>(odd)),
+            )
         })
     }
     #[inline(always)]
@@ -214,13 +215,15 @@ impl Simd for Avx512 {
         cpu!(_mm512_maskz_loadu_ps(mask as __mmask16, p))
     }
     #[inline(always)]
-    unsafe fn load_even(self, p: *const f32) -> __m512 {
+    fn unzip(self, lo: __m512, hi: __m512) -> (__m512, __m512) {
         cpu!({
-            let lo = _mm512_loadu_ps(p);
-            let hi = _mm512_loadu_ps(p.add(16));
             // Indices 0..15 pick from `lo`, 16..31 from `hi`.
-            let idx = _mm512_setr_epi32(0, 2, 4, 6, 8, 10, 12, 14, 16, 18, 20, 22, 24, 26, 28, 30);
-            _mm512_permutex2var_ps(lo, idx, hi)
+            let even = _mm512_setr_epi32(0, 2, 4, 6, 8, 10, 12, 14, 16, 18, 20, 22, 24, 26, 28, 30);
+            let odd = _mm512_setr_epi32(1, 3, 5, 7, 9, 11, 13, 15, 17, 19, 21, 23, 25, 27, 29, 31);
+            (
+                _mm512_permutex2var_ps(lo, even, hi),
+                _mm512_permutex2var_ps(lo, odd, hi),
+            )
         })
     }
     #[inline(always)]
