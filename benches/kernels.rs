@@ -229,6 +229,7 @@ fn bench_depthwise(c: &mut Criterion) {
         ("mbv2 dw 3x3 s1 C=32 112x112", conv(32, 112, 3, 1)),
         ("mbv2 dw 3x3 s2 C=96 112x112", conv(96, 112, 3, 2)),
         ("mbv2 dw 3x3 s1 C=144 56x56", conv(144, 56, 3, 1)),
+        ("mbv2 dw 3x3 s1 C=576 14x14", conv(576, 14, 3, 1)),
         ("mbv2 dw 3x3 s1 C=960 7x7", conv(960, 7, 3, 1)),
     ];
     for (name, g) in cases {
