@@ -199,10 +199,15 @@ impl Planes {
     /// `kh * out_h`, and pays for the copy whatever columns the call computes. Measured on
     /// the ResNet-20 shapes of the `kernels` benchmark (AVX-512): 1.1x to 1.2x faster at
     /// stride 1 (0.35 to 0.42 of the packed copy), 0.87x at stride 2 with 8 outputs per row
-    /// (0.75 of it). Hence: at most 2/3 of the packed route's copy, and offsets that fit the
-    /// u32 table.
+    /// (0.75 of it). The 3 → 32 and 3 → 16 stems of MobileNetV2, EfficientNet-B0 and
+    /// MobileNetV3 (3×3 at stride 2 to 112×112, 0.67 of it) took 254, 421 and 177 µs against
+    /// 293, 441 and 192 packed (2026-12-05, `convoy bench --local --steps`, batch 1, one
+    /// thread), while ResNet-18's 64 → 128 layer to 28×28 and RegNetY-400MF's 6-group one to
+    /// 56×56 (0.69 and 0.68) kept their shares of their networks' time (3.1–3.8 % and
+    /// 4.7–4.8 %, three alternated runs). Hence: at most 0.7 of the packed route's copy, and
+    /// offsets that fit the u32 table.
     pub(super) fn pays_off(&self, g: &ConvGeom, channels: usize) -> bool {
-        3 * self.phases * self.rows <= 2 * g.kh * g.out_h
+        10 * self.phases * self.rows <= 7 * g.kh * g.out_h
             && self.buffer_len(channels) <= u32::MAX as usize
     }
 }
