@@ -71,6 +71,10 @@ pub(crate) trait Simd: Copy {
         // SAFETY: `lanes` holds 16 >= LANES floats (every set has at most 16 lanes).
         unsafe { self.load(lanes.as_ptr()) }
     }
+    /// Asks the cache to fetch the line holding `p` (no effect on results; any address, no
+    /// access is made). A no-op unless the set overrides it.
+    #[inline(always)]
+    fn prefetch(self, _p: *const f32) {}
     /// The even and the odd lanes of the `2*LANES` values `lo` then `hi`:
     /// `(lo0, lo2, .., hi0, hi2, ..)` and `(lo1, lo3, .., hi1, hi3, ..)`.
     fn unzip(self, lo: Self::V, hi: Self::V) -> (Self::V, Self::V);

@@ -84,6 +84,11 @@ impl Simd for Avx2 {
         cpu!(_mm256_maskstore_ps(p, avx2_mask(n), v))
     }
     #[inline(always)]
+    fn prefetch(self, p: *const f32) {
+        // A prefetch is a hint: it never faults, whatever the address.
+        cpu!(_mm_prefetch::<_MM_HINT_T0>(p.cast::<i8>()))
+    }
+    #[inline(always)]
     fn unzip(self, lo: __m256, hi: __m256) -> (__m256, __m256) {
         cpu!({
             // Per 128-bit half: [lo0 lo2 hi0 hi2 | lo4 lo6 hi4 hi6]; then reorder the
@@ -213,6 +218,11 @@ impl Simd for Avx512 {
     unsafe fn load_masked(self, p: *const f32, mask: u32) -> __m512 {
         // One zero-masking load: masked-off lanes read as +0.0 and are not accessed.
         cpu!(_mm512_maskz_loadu_ps(mask as __mmask16, p))
+    }
+    #[inline(always)]
+    fn prefetch(self, p: *const f32) {
+        // A prefetch is a hint: it never faults, whatever the address.
+        cpu!(_mm_prefetch::<_MM_HINT_T0>(p.cast::<i8>()))
     }
     #[inline(always)]
     fn unzip(self, lo: __m512, hi: __m512) -> (__m512, __m512) {
