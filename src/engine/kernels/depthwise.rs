@@ -179,6 +179,70 @@ struct Job<'a> {
     channels: Range<usize>,
 }
 
+impl<'a> Job<'a> {
+    /// The input plane output channel `o` reads.
+    fn input_plane(&self, o: usize) -> &'a [f32] {
+        let (g, mult) = (self.g, self.w.out_c / self.g.in_c);
+        let plane_in = g.in_h * g.in_w;
+        &self.input[(o / mult) * plane_in..][..plane_in]
+    }
+
+    /// Output channel `o` (one of `channels`), its taps reading `input`.
+    fn plane<'p>(&self, o: usize, input: &'p [f32]) -> Plane<'p>
+    where
+        'a: 'p,
+    {
+        let taps = self.g.kh * self.g.kw;
+        let offset = (o - self.channels.start) * self.g.out_h * self.g.out_w;
+        Plane {
+            input,
+            taps: &self.w.w[o * taps..][..taps],
+            // Stays in bounds: channel `o`'s plane is inside the output (the caller of
+            // `depthwise` sized it); only the kernels dereference it.
+            out: self.out.wrapping_add(offset),
+            // Stays null when there is no residual: null is what the epilogue tests for.
+            residual: if self.residual.is_null() {
+                self.residual
+            } else {
+                self.residual.wrapping_add(offset)
+            },
+            bias: self.bias.map_or(0.0, |b| b[o]),
+            has_bias: self.bias.is_some(),
+        }
+    }
+
+    /// Applies an activation too costly for registers to a finished plane.
+    ///
+    /// # Safety
+    /// `plane` must be one of this job's output planes, with nothing else referring to it.
+    #[inline(always)]
+    unsafe fn finish_plane<S: Simd>(&self, s: S, plane: &Plane<'_>) {
+        if !self.act.is_cheap() {
+            let len = self.g.out_h * self.g.out_w;
+            // SAFETY: the plane is inside the output (caller).
+            let out = unsafe { std::slice::from_raw_parts_mut(plane.out, len) };
+            vmath::apply_slice(s, self.act, out);
+        }
+    }
+}
+
+/// Runs `$group!(U)` with the literal `U` that equals `$u` (1 to 8; more counts as 8): a group's
+/// accumulator count must be a constant.
+macro_rules! with_group_size {
+    ($u:expr, $group:ident) => {
+        match $u {
+            1 => $group!(1),
+            2 => $group!(2),
+            3 => $group!(3),
+            4 => $group!(4),
+            5 => $group!(5),
+            6 => $group!(6),
+            7 => $group!(7),
+            _ => $group!(8),
+        }
+    };
+}
+
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx2,fma")]
 unsafe fn run_avx2(s: super::simd::Avx2, job: &Job<'_>) {
@@ -324,12 +388,10 @@ impl FlatSource {
 #[inline(always)]
 unsafe fn flat<S: Simd>(s: S, job: &Job<'_>, source: FlatSource) {
     let g = job.g;
-    let w = job.w;
     let lanes = S::LANES;
     let plane = g.out_h * g.out_w;
     let nvec = plane.div_ceil(lanes);
     let taps = g.kh * g.kw;
-    let mult = w.out_c / g.in_c;
     // Per kernel row and column: the shift in source rows (columns) and the phase.
     let rows_of: Vec<(isize, usize)> = (0..g.kh)
         .map(|i| source.split((i * g.dil_h) as isize - g.pad_top as isize))
@@ -379,29 +441,18 @@ unsafe fn flat<S: Simd>(s: S, job: &Job<'_>, source: FlatSource) {
         FlatSource::Input => Vec::new(),
         FlatSource::Phases => vec![0.0f32; 4 * plane],
     };
-    let plane_in = g.in_h * g.in_w;
     for o in job.channels.clone() {
-        let offset = (o - job.channels.start) * plane;
-        let input = &job.input[(o / mult) * plane_in..][..plane_in];
-        let plane_ref = Plane {
-            input: match source {
+        let input = job.input_plane(o);
+        let plane_ref = job.plane(
+            o,
+            match source {
                 FlatSource::Input => input,
                 FlatSource::Phases => {
                     deal_phases(s, input, g.out_w, &mut phases);
                     &phases
                 }
             },
-            taps: &w.w[o * taps..][..taps],
-            // SAFETY: channel `o`'s plane is inside the output (caller).
-            out: unsafe { job.out.add(offset) },
-            residual: if job.residual.is_null() {
-                job.residual
-            } else {
-                job.residual.wrapping_add(offset)
-            },
-            bias: job.bias.map_or(0.0, |b| b[o]),
-            has_bias: job.bias.is_some(),
-        };
+        );
         let mut v = 0;
         while v < nvec {
             let u = (nvec - v).min(8);
@@ -416,23 +467,11 @@ unsafe fn flat<S: Simd>(s: S, job: &Job<'_>, source: FlatSource) {
                     }
                 }};
             }
-            match u {
-                1 => group!(1),
-                2 => group!(2),
-                3 => group!(3),
-                4 => group!(4),
-                5 => group!(5),
-                6 => group!(6),
-                7 => group!(7),
-                _ => group!(8),
-            }
+            with_group_size!(u, group);
             v += u;
         }
-        if !job.act.is_cheap() {
-            // SAFETY: the plane is inside the output and nothing else refers to it now.
-            let out = unsafe { std::slice::from_raw_parts_mut(plane_ref.out, plane) };
-            vmath::apply_slice(s, job.act, out);
-        }
+        // SAFETY: the plane is this job's, and its last store is done.
+        unsafe { job.finish_plane(s, &plane_ref) };
     }
 }
 
@@ -508,29 +547,10 @@ unsafe fn accumulate_flat<S: Simd, const U: usize>(
 #[inline(always)]
 unsafe fn planes<S: Simd>(s: S, job: &Job<'_>) {
     let g = job.g;
-    let w = job.w;
-    let mult = w.out_c / g.in_c;
-    let taps_len = g.kh * g.kw;
-    let plane_in = g.in_h * g.in_w;
-    let plane_out = g.out_h * g.out_w;
     let tiling = tiling(g, S::LANES);
     let mut windows = [0.0f32; WINDOWS];
     for o in job.channels.clone() {
-        let offset = (o - job.channels.start) * plane_out;
-        let plane = Plane {
-            input: &job.input[(o / mult) * plane_in..][..plane_in],
-            taps: &w.w[o * taps_len..][..taps_len],
-            // SAFETY: channel `o`'s plane is inside the output (caller).
-            out: unsafe { job.out.add(offset) },
-            // Stays null when there is no residual: null is what the epilogue tests for.
-            residual: if job.residual.is_null() {
-                job.residual
-            } else {
-                job.residual.wrapping_add(offset)
-            },
-            bias: job.bias.map_or(0.0, |b| b[o]),
-            has_bias: job.bias.is_some(),
-        };
+        let plane = job.plane(o, job.input_plane(o));
         match tiling {
             Some(t) => {
                 for oy0 in (0..g.out_h).step_by(t.rows) {
@@ -561,11 +581,8 @@ unsafe fn planes<S: Simd>(s: S, job: &Job<'_>) {
                 }
             }
         }
-        if !job.act.is_cheap() {
-            // SAFETY: the plane is inside the output and nothing else refers to it now.
-            let out = unsafe { std::slice::from_raw_parts_mut(plane.out, plane_out) };
-            vmath::apply_slice(s, job.act, out);
-        }
+        // SAFETY: the plane is this job's, and its last store is done.
+        unsafe { job.finish_plane(s, &plane) };
     }
 }
 
@@ -648,16 +665,7 @@ unsafe fn tile<S: Simd>(
                 }
             }};
         }
-        match u {
-            1 => group!(1),
-            2 => group!(2),
-            3 => group!(3),
-            4 => group!(4),
-            5 => group!(5),
-            6 => group!(6),
-            7 => group!(7),
-            _ => group!(8),
-        }
+        with_group_size!(u, group);
         q += u;
     }
 }
