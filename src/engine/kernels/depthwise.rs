@@ -441,6 +441,9 @@ unsafe fn flat<S: Simd>(s: S, job: &Job<'_>, source: FlatSource) {
         FlatSource::Input => Vec::new(),
         FlatSource::Phases => vec![0.0f32; 4 * plane],
     };
+    // The input plane `phases` holds: output channels of one input channel (a multiplier
+    // above 1) are dealt once.
+    let mut dealt = None;
     for o in job.channels.clone() {
         let input = job.input_plane(o);
         let plane_ref = job.plane(
@@ -448,7 +451,10 @@ unsafe fn flat<S: Simd>(s: S, job: &Job<'_>, source: FlatSource) {
             match source {
                 FlatSource::Input => input,
                 FlatSource::Phases => {
-                    deal_phases(s, input, g.out_w, &mut phases);
+                    if dealt != Some(input.as_ptr()) {
+                        deal_phases(s, input, g.out_w, &mut phases);
+                        dealt = Some(input.as_ptr());
+                    }
                     &phases
                 }
             },

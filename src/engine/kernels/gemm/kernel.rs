@@ -199,9 +199,9 @@ pub(super) unsafe fn tile_masked_kw<S: Simd, const MR: usize, const NV: usize, c
         // SAFETY: entry `group*KW < k` of `offs`, and the group's B rows (the caller's bounds).
         let row0 = unsafe { b.add(*offs.add(group * KW) as usize) };
         for (j, m_j) in m.iter().enumerate() {
+            s.prefetch(a.wrapping_add(A_PREFETCH));
             // SAFETY: column `j`'s B row is `j*dil_w` floats on (the caller's contract), and
             // this step's A column is inside the panel.
-            s.prefetch(a.wrapping_add(A_PREFETCH));
             unsafe {
                 let row = row0.add(j * dil_w);
                 let mut bv = [s.zero(); NV];
